@@ -1,0 +1,1 @@
+"""Gradfence user interfaces: the command line (and the desktop app)."""

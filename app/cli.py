@@ -1,0 +1,226 @@
+"""The `gradfence` command line. Exit codes: 0 success, 2 bad input, 1 internal failure."""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+import time
+import traceback
+from collections.abc import Sequence
+from pathlib import Path
+from typing import TextIO
+
+import numpy as np
+
+from core.errors import GradfenceInputError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
+DEFAULT_PRESET = "outliers-meet-batch-size.toml"
+
+
+class InputArgumentParser(argparse.ArgumentParser):
+    """argparse that reports a bad command line as our input error (exit 2, one sentence)."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        raise GradfenceInputError(f"gradfence: {message}; see `gradfence --help`.")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = InputArgumentParser(
+        prog="gradfence",
+        description="Measure how gradient clipping methods respond to outliers, batch size and "
+        "threshold on small synthetic problems.",
+    )
+    commands = parser.add_subparsers(
+        dest="command", metavar="COMMAND", parser_class=InputArgumentParser
+    )
+
+    run = commands.add_parser("run", help="train a preset's members and report the results")
+    run.add_argument("preset", type=Path, help="a scenario preset (.toml)")
+    run.add_argument(
+        "--set",
+        dest="overrides",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override a key, e.g. --set train.batch_size=128 (repeatable)",
+    )
+    run.add_argument("--out", type=Path, help="folder for scenario.toml, metrics.csv, summary.json")
+    run.add_argument(
+        "--trace",
+        action="store_true",
+        help="also write trace.npz (batches, initial weights, example norms) and data.npz",
+    )
+
+    check = commands.add_parser("check", help="validate presets and notebooks")
+    check.add_argument("files", type=Path, nargs="+", metavar="FILE")
+
+    commands.add_parser("presets", help="list shipped and user presets")
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the console script."""
+    try:
+        return _dispatch(list(sys.argv[1:] if argv is None else argv))
+    except GradfenceInputError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("stopped.", file=sys.stderr)
+        return EXIT_INTERNAL
+    except Exception:  # a bug of ours: say so, and keep the traceback for the report
+        print("internal error (please report it with the text below):", file=sys.stderr)
+        traceback.print_exc()
+        return EXIT_INTERNAL
+
+
+def _dispatch(argv: list[str]) -> int:
+    args = build_parser().parse_args(argv)
+    if args.command is None:
+        return _default_run()
+    if args.command == "run":
+        return command_run(args.preset, args.overrides, args.out, args.trace)
+    if args.command == "check":
+        return command_check(args.files)
+    return command_presets()
+
+
+def _default_run() -> int:
+    from core.presets import shipped_dir
+
+    print("Running the default preset headless (the desktop app is not part of this build).")
+    return command_run(shipped_dir() / DEFAULT_PRESET, [], None, False)
+
+
+def command_run(preset: Path, overrides: list[str], out: Path | None, trace: bool) -> int:
+    from core.engine import Engine, run_members
+    from core.results import collect, write_run
+    from core.scenario import load_scenario, parse_override
+
+    scenario = load_scenario(preset)
+    if overrides:
+        scenario = scenario.with_overrides(dict(parse_override(o) for o in overrides))
+    engine = Engine(scenario, run_members(scenario), trace=trace)
+    progress = Progress(scenario.train.steps, sys.stderr)
+    result = collect(engine, lambda record: progress.update(record.step))
+    progress.close()
+    print(format_table(result))
+    if out is not None:
+        written = write_run(result, out, trace)
+        print(f"wrote {', '.join(p.name for p in written)} to {out}")
+    return EXIT_OK
+
+
+def command_check(files: list[Path]) -> int:
+    from core.scenario import load_scenario
+
+    failures = 0
+    for path in files:
+        try:
+            scenario = load_scenario(path)
+        except GradfenceInputError as exc:
+            failures += 1
+            print(f"error: {exc}", file=sys.stderr)
+            continue
+        print(f"ok: {path} ({scenario.name}, {len(scenario.clip)} clipping setups)")
+    return EXIT_INPUT if failures else EXIT_OK
+
+
+def command_presets() -> int:
+    from core.presets import list_presets
+
+    for info in list_presets():
+        origin = "shipped" if info.shipped else "user"
+        if info.scenario is None:
+            print(f"{info.path.name}  [{origin}, broken]\n    {info.error}")
+            continue
+        print(f"{info.path.name}  [{origin}]  {info.name}")
+        if info.scenario.notes:
+            print(f"    {info.scenario.notes.strip().splitlines()[0]}")
+    return EXIT_OK
+
+
+class Progress:
+    """A one-line progress bar on a terminal; silent when the stream is not a terminal."""
+
+    def __init__(self, total: int, stream: TextIO, label: str = "step") -> None:
+        self.total, self.stream, self.label = total, stream, label
+        self.enabled = stream.isatty()
+        self.start = time.monotonic()
+
+    def update(self, done: int) -> None:
+        if not self.enabled:
+            return
+        elapsed = time.monotonic() - self.start
+        left = elapsed / done * (self.total - done) if done else math.nan
+        width = 30
+        filled = int(width * done / self.total)
+        bar = "#" * filled + "." * (width - filled)
+        eta = f"{left:5.1f} s left" if math.isfinite(left) else ""
+        self.stream.write(f"\r[{bar}] {self.label} {done}/{self.total}  {eta}")
+        self.stream.flush()
+
+    def close(self) -> None:
+        if self.enabled:
+            self.stream.write("\n")
+            self.stream.flush()
+
+
+def format_table(result: object) -> str:
+    """Final results per member: the loss, the task metric, the mean clipped share."""
+    from core.results import RunResult
+
+    assert isinstance(result, RunResult)
+    metric = "val_accuracy" if "val_accuracy" in result.metrics else "val_r2"
+    rows = [
+        (
+            "member",
+            "method",
+            "threshold",
+            "val loss",
+            metric.replace("val_", ""),
+            "clipped",
+            "diverged",
+        )
+    ]
+    share = result.metric("clipped_share")
+    counts = (~np.isnan(share)).sum(axis=0)
+    shares = np.where(counts > 0, np.nansum(share, axis=0) / np.maximum(counts, 1), np.nan)
+    for i, m in enumerate(result.members):
+        diverged = result.diverged_at[i]
+        rows.append(
+            (
+                m.name,
+                m.method,
+                _threshold_text(m.clip.rule, m.threshold),
+                _fmt(result.final("val_loss")[i]),
+                _fmt(result.final(metric)[i]),
+                f"{shares[i]:.0%}" if not math.isnan(shares[i]) else "-",
+                f"step {diverged}" if diverged is not None else "no",
+            )
+        )
+    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
+    lines = [
+        "  ".join(cell.ljust(w) for cell, w in zip(r, widths, strict=True)).rstrip() for r in rows
+    ]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    return (
+        f"{result.scenario.name}: batch size {result.batch_size}, {int(result.steps[-1])} steps\n"
+        + "\n".join(lines)
+    )
+
+
+def _threshold_text(rule: str, threshold: float) -> str:
+    if rule != "fixed":
+        return rule  # adaptive: the threshold moves with the watched norm
+    return "-" if math.isnan(threshold) else f"{threshold:g}"
+
+
+def _fmt(value: float) -> str:
+    return "-" if math.isnan(value) else f"{value:.4g}"
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,199 @@
+"""Clipping methods, on a stack of members that share one method.
+
+Per-example methods turn the layer inputs a and output gradients dz into weights on each
+example (or each example's unit) so that the clipped gradient is the re-weighted sum
+(dz * w)^T a. Batch-mean methods turn the mean gradient into coefficients that multiply it.
+Each returns the quantity its rule watches (the largest compared value of the step) and the
+share of compared items that were clipped.
+
+Shapes: k members of this method, B examples, layer l maps in_l -> out_l.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+
+
+@dataclass
+class ExampleWeights:
+    rows: list[torch.Tensor]  # per layer: (k, B, out_l) or (k, B, 1) weight on dz for W_l
+    bias: list[torch.Tensor]  # per layer: (k, B) weight on dz for b_l
+    clipped_share: torch.Tensor  # (k,)
+
+
+def example_sq_norms(inputs: list[torch.Tensor], dz: list[torch.Tensor]) -> torch.Tensor:
+    """Per-example squared gradient norm (K, B): sum_l |dz_l|^2 (|a_l|^2 + 1)."""
+    total = torch.zeros_like(dz[0][..., 0])
+    for a, d in zip(inputs, dz, strict=True):
+        total = total + (d * d).sum(-1) * ((a * a).sum(-1) + 1.0)
+    return total
+
+
+def _cap(threshold: torch.Tensor, norm: torch.Tensor) -> torch.Tensor:
+    """min(1, threshold / norm), with a zero norm left alone."""
+    return torch.clamp(threshold / norm, max=1.0)
+
+
+def example_norm(norms: torch.Tensor, threshold: torch.Tensor, layers: int) -> ExampleWeights:
+    """DP-SGD style: g_i <- g_i * min(1, C / |g_i|). norms (k, B), threshold (k,)."""
+    scale = _cap(threshold[:, None], norms)  # (k, B)
+    share = (norms > threshold[:, None]).to(norms.dtype).mean(dim=1)
+    return ExampleWeights([scale.unsqueeze(-1)] * layers, [scale] * layers, share)
+
+
+def microbatch_group_norms(
+    inputs: list[torch.Tensor], dz: list[torch.Tensor], group: int
+) -> torch.Tensor:
+    """Norm of each group's mean gradient (k, B / group), groups of consecutive examples."""
+    k, batch = dz[0].shape[:2]
+    groups = batch // group
+    total = torch.zeros(k, groups, dtype=dz[0].dtype)
+    for a, d in zip(inputs, dz, strict=True):
+        d_g = d.reshape(k * groups, group, d.shape[-1])
+        a_g = a.reshape(k * groups, group, a.shape[-1])
+        bias_sum = d_g.sum(dim=1)  # (k * groups, out)
+        sq = (bias_sum * bias_sum).sum(-1)
+        if group * (d.shape[-1] + a.shape[-1]) < d.shape[-1] * a.shape[-1]:
+            # Gram form: |sum_i dz_i a_i^T|^2 = sum_ij (dz_i.dz_j)(a_i.a_j), no (out, in) blocks.
+            gram = torch.bmm(d_g, d_g.transpose(1, 2)) * torch.bmm(a_g, a_g.transpose(1, 2))
+            sq = sq + gram.sum(dim=(1, 2))
+        else:
+            weight_sum = torch.bmm(d_g.transpose(1, 2), a_g)  # (k * groups, out, in)
+            sq = sq + (weight_sum * weight_sum).sum(dim=(1, 2))
+        total = total + sq.reshape(k, groups)
+    return torch.sqrt(total) / group
+
+
+def microbatch_norm(
+    group_norms: torch.Tensor, threshold: torch.Tensor, group: int, layers: int
+) -> ExampleWeights:
+    """Clip each group's mean gradient to the threshold; every example takes its group's scale."""
+    scale = _cap(threshold[:, None], group_norms).repeat_interleave(group, dim=1)  # (k, B)
+    share = (group_norms > threshold[:, None]).to(group_norms.dtype).mean(dim=1)
+    return ExampleWeights([scale.unsqueeze(-1)] * layers, [scale] * layers, share)
+
+
+def unit_ratios(
+    inputs: list[torch.Tensor],
+    dz: list[torch.Tensor],
+    params: list[torch.Tensor],
+    eps: float,
+    clipped_layers: int,
+    scale: float = 1.0,
+) -> tuple[list[torch.Tensor], list[torch.Tensor], list[torch.Tensor], list[torch.Tensor]]:
+    """Per-example unit gradient norms and AGC floors of the clipped layers.
+
+    Returns, per layer: row norms |dz_ij| |a_i| (k, B, out), bias norms |dz_i| (k, B),
+    row floors max(|W_j|, eps) (k, 1, out) and bias floors max(|b|, eps) (k, 1); `scale`
+    undoes a factor already folded into dz.
+    """
+    rows, bias, row_floor, bias_floor = [], [], [], []
+    for layer in range(clipped_layers):
+        a, d = inputs[layer], dz[layer]
+        weight, b = params[2 * layer], params[2 * layer + 1]
+        rows.append(d.abs() * (a.norm(dim=-1, keepdim=True) * scale))
+        bias.append(d.norm(dim=-1) * scale)
+        row_floor.append(torch.clamp(weight.norm(dim=-1), min=eps).unsqueeze(1))
+        bias_floor.append(torch.clamp(b.norm(dim=-1, keepdim=True), min=eps))
+    return rows, bias, row_floor, bias_floor
+
+
+def example_agc(
+    ratios: tuple[list[torch.Tensor], list[torch.Tensor], list[torch.Tensor], list[torch.Tensor]],
+    lam: torch.Tensor,
+    layers: int,
+) -> ExampleWeights:
+    """AGC applied to each example's gradient unit by unit; unclipped layers keep weight 1."""
+    rows, bias, row_floor, bias_floor = ratios
+    k, batch = bias[0].shape if bias else (lam.shape[0], 1)
+    one = torch.ones(k, batch, 1, dtype=lam.dtype)
+    row_w, bias_w = [], []
+    clipped = torch.zeros_like(lam)
+    units = 0
+    for layer in range(layers):
+        if layer >= len(rows):
+            row_w.append(one)
+            bias_w.append(one[..., 0])
+            continue
+        row_limit = lam[:, None, None] * row_floor[layer]  # (k, 1, out)
+        bias_limit = lam[:, None] * bias_floor[layer]  # (k, 1)
+        row_w.append(_cap(row_limit, rows[layer]))
+        bias_w.append(_cap(bias_limit, bias[layer]))
+        clipped = clipped + (rows[layer] > row_limit).sum(dim=(1, 2))
+        clipped = clipped + (bias[layer] > bias_limit).sum(dim=1)
+        units += batch * (rows[layer].shape[-1] + 1)
+    return ExampleWeights(row_w, bias_w, clipped / max(units, 1))
+
+
+def example_agc_watch(
+    ratios: tuple[list[torch.Tensor], list[torch.Tensor], list[torch.Tensor], list[torch.Tensor]],
+) -> torch.Tensor:
+    """The largest unit ratio |G_i| / max(|W_i|, eps) of any example, per member."""
+    rows, bias, row_floor, bias_floor = ratios
+    worst = [torch.amax(r / f, dim=(1, 2)) for r, f in zip(rows, row_floor, strict=True)]
+    worst += [torch.amax(b / f, dim=1) for b, f in zip(bias, bias_floor, strict=True)]
+    return torch.stack(worst).amax(dim=0)
+
+
+# ---------------------------------------------------------------------------------------------
+# Batch-mean methods: a coefficient, broadcastable to the flat mean gradient (k, P), multiplies
+# it. Each takes the flat gradient or its per-parameter views (k, *shape).
+
+BatchResult = tuple[torch.Tensor, torch.Tensor, torch.Tensor]  # coefficient, watched, share
+
+
+def member_sq(tensors: list[torch.Tensor]) -> torch.Tensor:
+    """Squared L2 norm over all of a member's tensors, (K,)."""
+    return sum((t * t).flatten(1).sum(1) for t in tensors)  # type: ignore[return-value]
+
+
+def global_norm(flat: torch.Tensor, threshold: torch.Tensor) -> BatchResult:
+    """g <- g * min(1, t / |g|) over all parameters at once."""
+    norm = torch.linalg.vector_norm(flat, dim=1)
+    return _cap(threshold, norm).unsqueeze(1), norm, (norm > threshold).to(norm.dtype)
+
+
+def value(flat: torch.Tensor, threshold: torch.Tensor) -> BatchResult:
+    """Each coordinate clamped to [-t, t]; the coefficient is clamp(g) / g (1 where |g| <= t)."""
+    size = flat.abs()
+    t = threshold.unsqueeze(1)
+    over = size > t
+    coef = torch.where(over, t / size, 1.0)
+    return coef, size.amax(dim=1), over.to(flat.dtype).mean(dim=1)
+
+
+def tensor_norm(views: list[torch.Tensor], threshold: torch.Tensor) -> BatchResult:
+    """Each parameter tensor rescaled by its own norm."""
+    norms = torch.stack([torch.linalg.vector_norm(v.flatten(1), dim=1) for v in views])  # (T, k)
+    caps = _cap(threshold, norms)
+    coef = torch.cat(
+        [c[:, None].expand(-1, v[0].numel()) for c, v in zip(caps, views, strict=True)], 1
+    )
+    return coef, norms.amax(dim=0), (norms > threshold).to(norms.dtype).mean(dim=0)
+
+
+def unit_agc(
+    views: list[torch.Tensor],
+    params: list[torch.Tensor],
+    lam: torch.Tensor,
+    eps: float,
+    clipped_layers: int,
+) -> BatchResult:
+    """AGC on the mean gradient: a unit is a row of W (k, out, in) or a whole bias vector."""
+    coefs = [torch.ones_like(v) for v in views]
+    ratios, clipped, units = [], torch.zeros_like(lam), 0
+    for index in range(2 * clipped_layers):
+        g, w = views[index], params[index]
+        floor = torch.clamp(w.norm(dim=-1, keepdim=True), min=eps)  # rows (k, out, 1); bias (k, 1)
+        grad_norm = g.norm(dim=-1, keepdim=True)
+        limit = lam.reshape(-1, *([1] * (g.dim() - 1))) * floor
+        coefs[index] = _cap(limit, grad_norm).expand_as(g)
+        ratios.append((grad_norm / floor).flatten(1).amax(1))
+        clipped = clipped + (grad_norm > limit).flatten(1).sum(1)
+        units += grad_norm[0].numel()
+    if not ratios:
+        return torch.ones_like(lam[:, None]), torch.zeros_like(lam), torch.zeros_like(lam)
+    coef = torch.cat([c.reshape(c.shape[0], -1) for c in coefs], dim=1)
+    return coef, torch.stack(ratios).amax(dim=0), clipped / units

@@ -1,0 +1,683 @@
+"""The training engine: K members of one batch size trained together, yielding step records.
+
+One gradient pass serves every member: a forward and a hand-written backward give each
+layer's inputs a (K, B, in) and output gradients dz (K, B, out); per-example methods weight the
+examples, the clipped gradient is the re-weighted sum (dz * w)^T a, and batch-mean methods
+then rescale that mean. Members that share a seed share their batches and their start.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+
+import numpy as np
+import torch
+
+from core import clipping
+from core.data import Dataset, build_dataset
+from core.model import (
+    Architecture,
+    ParamLayout,
+    architecture,
+    backward,
+    evaluate,
+    example_losses,
+    forward,
+    init_params,
+    param_layout,
+)
+from core.rules import FixedRule, Rule, make_rule
+from core.sampler import plan_batches
+from core.scenario import PER_EXAMPLE_METHODS, ClipConfig, Scenario
+
+# A member whose clean batch loss exceeds this multiple of its starting validation loss (or 1,
+# whichever is larger) has diverged, as has one whose loss or gradient is not finite.
+EXPLODE_FACTOR = 1e4
+# Exponential weight of the running estimates behind noise_scale, per logged step.
+NOISE_SCALE_ALPHA = 0.95
+
+GRADIENT_METRICS = (
+    "batch_loss",
+    "grad_norm_pre",
+    "grad_norm_post",
+    "clip_coef",
+    "clipped_share",
+    "outlier_share",
+    "outlier_pass",
+    "clean_cosine",
+    "update_norm",
+    "example_norm_p50",
+    "example_norm_p90",
+    "example_norm_p99",
+    "example_norm_max",
+    "noise_scale",
+    "lr",
+    "batch_outliers",
+)
+
+
+def metric_names(classification: bool) -> tuple[str, ...]:
+    """Metric columns in the order of metrics.csv (after step)."""
+    val = ("val_loss", "val_accuracy" if classification else "val_r2")
+    return GRADIENT_METRICS[:1] + val + GRADIENT_METRICS[1:] + ("diverged",)
+
+
+@dataclass(frozen=True)
+class Member:
+    """One trained model: a clipping method at one threshold, from one seed."""
+
+    clip: ClipConfig
+    seed: int
+
+    @property
+    def method(self) -> str:
+        return self.clip.method
+
+    @property
+    def name(self) -> str:
+        return self.clip.display_name
+
+    @property
+    def threshold(self) -> float:
+        return math.nan if self.clip.threshold is None else self.clip.threshold
+
+
+def run_members(scenario: Scenario) -> list[Member]:
+    """The members of `gradfence run`: each [[clip]] table at its threshold, at train.seed."""
+    return [Member(c, scenario.train.seed) for c in scenario.clip]
+
+
+def with_threshold(member: Member, threshold: float) -> Member:
+    return dataclasses.replace(member, clip=dataclasses.replace(member.clip, threshold=threshold))
+
+
+@dataclass(frozen=True)
+class StepRecord:
+    """What one logged step measured: each metric is an array over the K members."""
+
+    step: int
+    values: dict[str, np.ndarray]
+    newly_diverged: tuple[int, ...] = ()
+
+
+@dataclass
+class _Group:
+    """Members that share a method and its structural settings."""
+
+    method: str
+    positions: list[int]
+    index: torch.Tensor
+    clips: list[ClipConfig]
+    thresholds: torch.Tensor
+    rules: list[Rule]
+    eps: float
+    microbatch: int
+    adaptive: bool = field(init=False)
+
+    stack_size: int = 0
+    whole: bool = field(init=False)  # the group is the whole stack, in order
+
+    def __post_init__(self) -> None:
+        self.adaptive = not all(isinstance(r, FixedRule) for r in self.rules)
+        self.whole = self.positions == list(range(self.stack_size))
+
+    def take(self, tensor: torch.Tensor) -> torch.Tensor:
+        """The group's rows of a stack-shaped tensor."""
+        return tensor if self.whole else tensor[self.index]
+
+    def put(self, tensor: torch.Tensor, rows: torch.Tensor) -> torch.Tensor:
+        """`tensor` with the group's rows replaced (in place unless the group is the stack)."""
+        if self.whole:
+            return (
+                rows
+                if tensor.numel() == 0 or rows.shape == tensor.shape
+                else rows.expand_as(tensor)
+            )
+        tensor[self.index] = rows
+        return tensor
+
+    def levels(self, watched: torch.Tensor) -> torch.Tensor:
+        """This step's thresholds for the group, given its watched quantity (k,)."""
+        if not self.adaptive:
+            return self.thresholds
+        values = watched.tolist()
+        return torch.tensor(
+            [r.level(v) for r, v in zip(self.rules, values, strict=True)], dtype=watched.dtype
+        )
+
+
+@dataclass
+class PassResult:
+    """Everything one gradient pass produced for the stack."""
+
+    grads: torch.Tensor  # (K, P) the clipped mean gradient, noise included
+    loss: torch.Tensor  # (K, B) per-example loss
+    norms: torch.Tensor | None  # (K, B) pre-clip per-example gradient norms, when computed
+    watched: torch.Tensor  # (K,) the quantity each member's rule watched
+    levels: torch.Tensor  # (K,) the threshold applied (inf: none)
+    clipped_share: torch.Tensor  # (K,)
+    skip: torch.Tensor  # (K,) bool, a spike dropped under on_spike = "skip"
+    detail: dict[str, torch.Tensor] | None = None  # logged steps: split statistics
+
+
+class StackPass:
+    """The gradient pass of a stack: per-example statistics, clipping, noise."""
+
+    def __init__(
+        self,
+        arch: Architecture,
+        members: list[Member],
+        reduction: str,
+        exclude_head: bool,
+        dtype: torch.dtype,
+    ) -> None:
+        self.arch = arch
+        self.layout = param_layout(arch)
+        self.members = members
+        self.reduction = reduction
+        self.dtype = dtype
+        self.clipped_layers = arch.layers - 1 if exclude_head else arch.layers
+        self.groups: list[_Group] = []
+        keyed: dict[tuple[str, float, int], list[int]] = {}
+        for i, m in enumerate(members):
+            if m.method == "none":
+                continue
+            eps = m.clip.eps if m.method in ("unit-agc", "example-agc") else 0.0
+            group = m.clip.microbatch if m.method == "microbatch-norm" else 0
+            keyed.setdefault((m.method, eps, group), []).append(i)
+        for (method, eps, group), positions in keyed.items():
+            clips = [members[i].clip for i in positions]
+            self.groups.append(
+                _Group(
+                    method=method,
+                    positions=positions,
+                    index=torch.tensor(positions, dtype=torch.long),
+                    clips=clips,
+                    thresholds=torch.tensor([c.threshold for c in clips], dtype=dtype),
+                    rules=[make_rule(c) for c in clips],
+                    eps=eps,
+                    microbatch=group,
+                    stack_size=len(members),
+                )
+            )
+        self.want_norms = False  # set by an engine that traces per-example norms
+        self.per_example = torch.tensor([m.method in PER_EXAMPLE_METHODS for m in members])
+        self.any_per_example = bool(self.per_example.any())
+        self.skips = torch.tensor([m.clip.on_spike == "skip" for m in members])
+        self.any_skip = bool(self.skips.any())
+        self.skip_factor = torch.tensor([m.clip.skip_factor for m in members], dtype=dtype)
+        self.noisy = [i for i, m in enumerate(members) if m.clip.noise_multiplier > 0]
+        self.noise_generators = {
+            i: torch.Generator().manual_seed(int(members[i].seed) * 7919 + 1) for i in self.noisy
+        }
+
+    def run(
+        self,
+        params: list[torch.Tensor],
+        x: torch.Tensor,
+        y: torch.Tensor,
+        outlier: torch.Tensor,
+        detail: bool,
+    ) -> PassResult:
+        """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views."""
+        arch = self.arch
+        K, B = x.shape[:2]
+        # dz is taken of the reduced loss (mean or sum), so plain sums of dz^T a are the batch
+        # gradient; per-example quantities divide the reduction out again.
+        reduce = 1.0 / B if self.reduction == "mean" else 1.0
+        inputs, pre = forward(arch, params, x)
+        loss, d_out = example_losses(arch, pre[-1], y)
+        dz = backward(arch, params, inputs, pre, d_out * reduce)
+        sq: torch.Tensor | None = None
+        raw_norms = norms = None
+        if self.any_per_example or detail or self.want_norms:
+            sq = clipping.example_sq_norms(inputs, dz) * (1.0 / reduce**2)
+            raw_norms = norms = torch.sqrt(sq)
+        # Between logged steps a stack of batch-mean methods never looks at per-example norms.
+
+        if norms is not None and self.any_per_example and not bool(torch.isfinite(norms).all()):
+            # Per-example methods drop an example whose gradient is not finite (its norm is
+            # above any threshold); batch-mean methods see the non-finite mean, as in practice.
+            keep = (torch.isfinite(norms) | ~self.per_example[:, None]).unsqueeze(-1)
+            inputs = [torch.where(keep, a, 0.0) for a in inputs]
+            dz = [torch.where(keep, d, 0.0) for d in dz]
+            norms = torch.where(keep.squeeze(-1), norms, 0.0)
+
+        watched = self.blank(K, math.nan)
+        levels = self.blank(K, math.inf)
+        share = self.blank(K, 0.0)
+        rows_w: list[torch.Tensor] | None = None
+        bias_w: list[torch.Tensor] | None = None
+        batch_groups = []
+        for g in self.groups:
+            if g.method not in PER_EXAMPLE_METHODS:
+                batch_groups.append(g)
+                continue
+            if rows_w is None or bias_w is None:
+                rows_w = [torch.ones_like(d) for d in dz]
+                bias_w = [torch.ones_like(d[..., 0]) for d in dz]
+            sub_inputs = [g.take(a) for a in inputs]
+            sub_dz = [g.take(d) for d in dz]
+            assert norms is not None  # computed whenever a per-example method is present
+            weights, seen, level = self._example_weights(
+                g, sub_inputs, sub_dz, g.take(norms), params, 1.0 / reduce
+            )
+            watched, levels = g.put(watched, seen), g.put(levels, level)
+            share = g.put(share, weights.clipped_share)
+            for layer in range(arch.layers):
+                rows_w[layer] = g.put(rows_w[layer], weights.rows[layer].expand_as(sub_dz[layer]))
+                bias_w[layer] = g.put(bias_w[layer], weights.bias[layer])
+
+        flat, parts = self._weighted_sums(inputs, dz, rows_w, bias_w, outlier, detail)
+
+        coef_all = torch.ones_like(flat) if detail else None
+        for g in batch_groups:
+            sub = g.take(flat)
+            level = g.thresholds
+            if g.adaptive:
+                unclipped = torch.full_like(g.thresholds, math.inf)
+                level = g.levels(self._batch_coefs(g, sub, params, unclipped)[1])
+            coef, seen, clipped = self._batch_coefs(g, sub, params, level)
+            watched, levels, share = (
+                g.put(watched, seen),
+                g.put(levels, level),
+                g.put(share, clipped),
+            )
+            flat = flat.mul_(coef) if g.whole else g.put(flat, sub * coef)
+            if coef_all is not None:
+                coef_all = g.put(coef_all, coef.expand_as(sub))
+
+        detail_stats = None
+        if parts is not None and coef_all is not None and sq is not None:
+            detail_stats = self._detail(flat, parts, coef_all, sq, outlier)
+
+        if self.noisy:
+            flat = flat.clone()
+            for i in self.noisy:
+                # DP-SGD: N(0, sigma^2 C^2) on the clipped sum, so sigma * C * reduce on the mean.
+                sigma = self.members[i].clip.noise_multiplier * float(levels[i]) * reduce
+                noise = torch.randn(
+                    flat.shape[1], generator=self.noise_generators[i], dtype=self.dtype
+                )
+                flat[i] += sigma * noise
+
+        if self.any_skip:
+            skip = self.skips & ~(watched <= self.skip_factor * levels)
+        else:
+            skip = torch.zeros(K, dtype=torch.bool)
+        return PassResult(flat, loss, raw_norms, watched, levels, share, skip, detail_stats)
+
+    def blank(self, K: int, fill: float) -> torch.Tensor:
+        """A per-member buffer; empty when one group spans the stack and will replace it."""
+        if len(self.groups) == 1 and self.groups[0].whole:
+            return torch.empty(0, dtype=self.dtype)
+        return torch.full((K,), fill, dtype=self.dtype)
+
+    def _example_weights(
+        self,
+        g: _Group,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        norms: torch.Tensor,
+        params: list[torch.Tensor],
+        unreduce: float,
+    ) -> tuple[clipping.ExampleWeights, torch.Tensor, torch.Tensor]:
+        layers = self.arch.layers
+        if g.method == "example-norm":
+            seen = norms.amax(dim=1)
+            level = g.levels(seen)
+            return clipping.example_norm(norms, level, layers), seen, level
+        if g.method == "microbatch-norm":
+            group_norms = clipping.microbatch_group_norms(inputs, dz, g.microbatch) * unreduce
+            seen = group_norms.amax(dim=1)
+            level = g.levels(seen)
+            return clipping.microbatch_norm(group_norms, level, g.microbatch, layers), seen, level
+        sub_params = [g.take(p) for p in params]
+        ratios = clipping.unit_ratios(inputs, dz, sub_params, g.eps, self.clipped_layers, unreduce)
+        if self.clipped_layers:
+            seen = clipping.example_agc_watch(ratios)
+        else:
+            seen = torch.zeros(len(g.positions), dtype=self.dtype)
+        level = g.levels(seen)
+        return clipping.example_agc(ratios, level, layers), seen, level
+
+    def _batch_coefs(
+        self, g: _Group, flat: torch.Tensor, params: list[torch.Tensor], level: torch.Tensor
+    ) -> clipping.BatchResult:
+        if g.method == "global-norm":
+            return clipping.global_norm(flat, level)
+        if g.method == "value":
+            return clipping.value(flat, level)
+        views = self.layout.views(flat)
+        if g.method == "tensor-norm":
+            return clipping.tensor_norm(views, level)
+        sub_params = [g.take(p) for p in params]
+        return clipping.unit_agc(views, sub_params, level, g.eps, self.clipped_layers)
+
+    def _weighted_sums(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        rows_w: list[torch.Tensor] | None,
+        bias_w: list[torch.Tensor] | None,
+        outlier: torch.Tensor,
+        detail: bool,
+    ) -> tuple[torch.Tensor, list[torch.Tensor] | None]:
+        """The weighted batch gradient (K, P); on logged steps also four flat parts.
+
+        The parts are (clean weighted, outlier weighted, clean plain, outlier plain). They are
+        split with torch.where, not by multiplying with a 0/1 mask, so that an outlier with an
+        infinite input cannot turn the clean part into NaN.
+        """
+        weighted = rows_w is not None and bias_w is not None
+        split = detail and bool(outlier.any())
+        sides = ((~outlier).unsqueeze(-1), outlier.unsqueeze(-1)) if split else (None,)
+        # pieces[side][kind]: kind 0 weighted, 1 plain (only when weights exist)
+        pieces: list[list[list[torch.Tensor]]] = [[[], []] for _ in sides]
+        for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
+            rows, bias = [d], [d]
+            if weighted:
+                assert rows_w is not None and bias_w is not None
+                rows.insert(0, d * rows_w[layer])
+                bias.insert(0, d * bias_w[layer].unsqueeze(-1))
+                if not detail:
+                    rows, bias = rows[:1], bias[:1]
+            out = d.shape[-1]
+            for side, mask in enumerate(sides):
+                d_rows = torch.cat(rows, dim=-1) if len(rows) > 1 else rows[0]  # (K, B, n out)
+                d_bias = torch.cat(bias, dim=-1) if len(bias) > 1 else bias[0]
+                a_side = a
+                if mask is not None:
+                    a_side = torch.where(mask, a, 0.0)
+                    d_rows, d_bias = torch.where(mask, d_rows, 0.0), torch.where(mask, d_bias, 0.0)
+                weight_sum = torch.bmm(d_rows.transpose(1, 2), a_side)  # (K, n out, in)
+                bias_sum = d_bias.sum(dim=1)
+                for kind in range(len(rows)):
+                    pieces[side][kind].append(
+                        weight_sum[:, kind * out : (kind + 1) * out].flatten(1)
+                    )
+                    pieces[side][kind].append(bias_sum[:, kind * out : (kind + 1) * out])
+        flats = [[torch.cat(k, dim=1) for k in side if k] for side in pieces]
+        if not detail:
+            return flats[0][0], None
+        # Without weights the weighted and plain parts are one and the same.
+        clean_w, clean_u = flats[0][0], flats[0][-1]
+        if split:
+            out_w, out_u = flats[1][0], flats[1][-1]
+        else:
+            out_w = out_u = torch.zeros_like(clean_w)
+        return clean_w + out_w if split else clean_w.clone(), [clean_w, out_w, clean_u, out_u]
+
+    def _detail(
+        self,
+        clipped: torch.Tensor,
+        parts: list[torch.Tensor],
+        coef: torch.Tensor,
+        sq: torch.Tensor,
+        outlier: torch.Tensor,
+    ) -> dict[str, torch.Tensor]:
+        _, out_w, clean_u, out_u = parts
+        norm = functools.partial(torch.linalg.vector_norm, dim=1)
+        pre = norm(clean_u + out_u)
+        post = norm(clipped)
+        out_after = norm(coef * out_w)
+        n_out = outlier.sum(dim=1).to(self.dtype)
+        return {
+            "grad_norm_pre": pre,
+            "grad_norm_post": post,
+            "clip_coef": post / pre,
+            "outlier_share": torch.where(n_out > 0, out_after / post, 0.0),
+            "outlier_pass": torch.where(n_out > 0, out_after / norm(out_u), math.nan),
+            "clean_sum": clean_u,
+            "clean_sq_norms": torch.where(outlier, 0.0, sq),
+            "n_clean": (~outlier).sum(dim=1).to(self.dtype),
+            "batch_outliers": n_out,
+        }
+
+
+class Engine:
+    """Trains a stack of members of one batch size; iterate `records()` to run it."""
+
+    def __init__(
+        self,
+        scenario: Scenario,
+        members: list[Member],
+        batch_size: int | None = None,
+        *,
+        dataset: Dataset | None = None,
+        dtype: torch.dtype = torch.float32,
+        trace: bool = False,
+    ) -> None:
+        if not members:
+            raise ValueError("an engine needs at least one member")
+        self.scenario = scenario
+        self.members = members
+        self.batch_size = batch_size or scenario.train.batch_size
+        self.dataset = dataset if dataset is not None else build_dataset(scenario)
+        self.dtype = dtype
+        self.arch = architecture(scenario, self.dataset.dim)
+        self.layout = param_layout(self.arch)
+        train = scenario.train
+        self.steps = train.steps
+        self.lr = train.lr * _lr_factor(train.lr_scaling, self.batch_size, train.reference_batch)
+        self.reduce = 1.0 / self.batch_size if train.loss_reduction == "mean" else 1.0
+
+        seeds = sorted({m.seed for m in members})
+        slot = {s: i for i, s in enumerate(seeds)}
+        self.member_slot = torch.tensor([slot[m.seed] for m in members])
+        self.single_seed = len(seeds) == 1
+        plans = [
+            plan_batches(self.dataset, scenario.outliers, self.batch_size, self.steps, s)
+            for s in seeds
+        ]
+        self.batches = torch.from_numpy(np.stack([p.indices for p in plans]))  # (seeds, steps, B)
+        ds = self.dataset
+        self.x_train = torch.as_tensor(ds.x_train, dtype=dtype)
+        y_dtype = torch.long if ds.classification else dtype
+        self.y_train = torch.as_tensor(ds.y_train, dtype=y_dtype)
+        self.outlier_train = torch.as_tensor(ds.outlier_train)
+        self.n_clean_train = float((~self.outlier_train[: ds.n_train]).sum())
+        self.x_val = torch.as_tensor(ds.x_val, dtype=dtype)
+        self.y_val = torch.as_tensor(ds.y_val, dtype=y_dtype)
+
+        start = init_params(self.arch, [init_seed(scenario, m.seed) for m in members], dtype)
+        # All of a member's parameters live in one row of theta (K, P); the model reads views.
+        self.theta = ParamLayout.flatten(start).requires_grad_(True)
+        with torch.no_grad():
+            self.params = self.layout.views(self.theta)
+        self.initial = [p.clone() for p in start]
+        self.optimizer = _make_optimizer(scenario, self.theta, self.lr)
+        self.grad_pass = StackPass(
+            self.arch, members, train.loss_reduction, scenario.model.exclude_head, dtype
+        )
+        self.grad_pass.want_norms = trace
+        K = len(members)
+        self.example_norms = np.zeros((K, self.steps, self.batch_size)) if trace else None
+        self.alive = torch.ones(K, dtype=torch.bool)
+        self.any_dead = False
+        self.diverged_at: list[int | None] = [None] * K
+        self._noise_tr = torch.zeros(K, dtype=torch.float64)
+        self._noise_g2 = torch.zeros(K, dtype=torch.float64)
+
+    def batch_indices(self, member: int) -> np.ndarray:
+        """(steps, B) rows of x_train that a member trained on."""
+        return self.batches[int(self.member_slot[member])].numpy()
+
+    def records(self) -> Iterator[StepRecord]:
+        """Train step by step; yield a record at every multiple of eval_every and at the end."""
+        with torch.no_grad():
+            start_loss, _ = evaluate(self.arch, self.params, self.x_val, self.y_val)
+            explode = EXPLODE_FACTOR * torch.clamp(start_loss, min=1.0)
+            every = self.scenario.train.eval_every
+            for step in range(1, self.steps + 1):
+                logged = step % every == 0 or step == self.steps
+                record = self._step(step, logged, explode)
+                if record is not None:
+                    yield record
+
+    def _step(self, step: int, logged: bool, explode: torch.Tensor) -> StepRecord | None:
+        rows = self.batches[:, step - 1]  # (seeds, B)
+        x, y, outlier = self.x_train[rows], self.y_train[rows], self.outlier_train[rows]
+        if self.single_seed:  # every member trains on the one batch: broadcast, do not copy
+            K = len(self.members)
+            x, y, outlier = x.expand(K, -1, -1), y.expand(K, -1), outlier.expand(K, -1)
+        else:
+            x, y, outlier = x[self.member_slot], y[self.member_slot], outlier[self.member_slot]
+        result = self.grad_pass.run(self.params, x, y, outlier, logged)
+        if self.example_norms is not None and result.norms is not None:
+            self.example_norms[:, step - 1] = result.norms.double().numpy()
+
+        if bool(outlier.any()):
+            n_clean = (~outlier).sum(dim=1).clamp(min=1).to(self.dtype)
+            clean_loss = torch.where(outlier, 0.0, result.loss).sum(dim=1) / n_clean
+        else:
+            clean_loss = result.loss.mean(dim=1)
+        # A skipped spike may carry a non-finite gradient; a bad clean loss is never excused.
+        loss_ok = clean_loss <= explode
+        grad_ok = torch.isfinite(result.grads.sum(dim=1)) | result.skip
+        ok = loss_ok & grad_ok
+        newly = torch.zeros_like(self.alive)
+        if not bool(ok.all()):
+            newly = self.alive & ~ok
+            for i in torch.nonzero(newly).flatten().tolist():
+                self.diverged_at[i] = step
+            self.alive &= ~newly
+            self.any_dead = True
+        frozen = (~self.alive | result.skip) if (self.any_dead or self.grad_pass.any_skip) else None
+
+        before = self.theta.detach().clone() if logged else None
+        self._apply(result.grads, frozen)
+
+        if not logged:
+            return None
+        return self._record(step, result, before, newly)
+
+    def _apply(self, grads: torch.Tensor, frozen: torch.Tensor | None) -> None:
+        """One optimizer step; frozen members (diverged or skipping) keep parameters and state."""
+        theta = self.theta
+        if frozen is None or not bool(frozen.any()):
+            theta.grad = grads
+            self.optimizer.step()
+            return
+        keep = frozen.unsqueeze(1)
+        theta.grad = torch.where(keep, 0.0, grads)
+        saved = theta.detach().clone()
+        state = self.optimizer.state[theta]
+        saved_state = {k: v.clone() for k, v in state.items() if _stacked(v, theta)}
+        self.optimizer.step()
+        theta.data.copy_(torch.where(keep, saved, theta.data))  # in place: the views stay valid
+        for key, value in state.items():
+            if _stacked(value, theta):
+                old = saved_state.get(key, torch.zeros_like(value))
+                value.copy_(torch.where(keep, old, value))
+
+    def _record(
+        self,
+        step: int,
+        result: PassResult,
+        before: torch.Tensor | None,
+        newly: torch.Tensor,
+    ) -> StepRecord:
+        detail = result.detail
+        if detail is None or before is None:
+            raise RuntimeError("a logged step must carry its detail statistics")
+        val_loss, val_metric = evaluate(self.arch, self.params, self.x_val, self.y_val)
+        delta = self.theta.detach() - before
+        update_norm = torch.linalg.vector_norm(delta, dim=1)
+        clean_sum = detail["clean_sum"]
+        clean_norm = torch.linalg.vector_norm(clean_sum, dim=1)
+        cosine = -(delta * clean_sum).sum(dim=1) / (update_norm * clean_norm)
+        if result.norms is None:
+            raise RuntimeError("a logged step must carry per-example norms")
+        norms = result.norms.double()
+        quantiles = torch.nanquantile(
+            norms, torch.tensor([0.5, 0.9, 0.99], dtype=torch.float64), dim=1
+        )
+        values: dict[str, torch.Tensor] = {
+            "batch_loss": result.loss.mean(dim=1),
+            "val_loss": val_loss,
+            "val_accuracy" if self.arch.classification else "val_r2": val_metric,
+            "grad_norm_pre": detail["grad_norm_pre"],
+            "grad_norm_post": detail["grad_norm_post"],
+            "clip_coef": detail["clip_coef"],
+            "clipped_share": result.clipped_share,
+            "outlier_share": detail["outlier_share"],
+            "outlier_pass": detail["outlier_pass"],
+            "clean_cosine": cosine,
+            "update_norm": update_norm,
+            "example_norm_p50": quantiles[0],
+            "example_norm_p90": quantiles[1],
+            "example_norm_p99": quantiles[2],
+            "example_norm_max": torch.amax(torch.nan_to_num(norms, nan=math.inf), dim=1),
+            "noise_scale": self._noise_scale(detail),
+            "lr": torch.full_like(val_loss, self.lr),
+            "batch_outliers": detail["batch_outliers"],
+        }
+        dead = (~self.alive).numpy()
+        out = {}
+        for name, tensor in values.items():
+            array = tensor.detach().double().numpy().copy()
+            if name not in ("lr", "batch_outliers"):
+                array[dead] = math.nan
+            out[name] = array
+        out["diverged"] = dead.astype(np.float64)
+        ordered = {name: out[name] for name in metric_names(self.arch.classification)}
+        return StepRecord(step, ordered, tuple(torch.nonzero(newly).flatten().tolist()))
+
+    def _noise_scale(self, detail: dict[str, torch.Tensor]) -> torch.Tensor:
+        """B_simple = tr(Sigma) / |G|^2 from the clean examples of logged batches.
+
+        Per batch of b clean examples from N clean training rows (without replacement),
+        S = mean |g_i|^2 and |g_b|^2 give unbiased tr(Sigma) = (S - |g_b|^2) b (N-1) / (N (b-1))
+        and |G|^2 = |g_b|^2 - tr(Sigma) (N - b) / (b (N - 1)); numerator and denominator are
+        averaged over logged steps (exponentially) before dividing.
+        """
+        b = detail["n_clean"].double()
+        N = self.n_clean_train
+        sum_norm = torch.linalg.vector_norm(detail["clean_sum"], dim=1).double()
+        g2 = (sum_norm / (self.reduce * b.clamp(min=1.0))) ** 2
+        s = detail["clean_sq_norms"].double().sum(dim=1) / b.clamp(min=1.0)
+        tr = (s - g2) * b * (N - 1) / (N * (b - 1).clamp(min=1.0))
+        big_g2 = g2 - tr * (N - b) / (b * (N - 1))
+        usable = torch.isfinite(tr) & torch.isfinite(big_g2) & (b > 1)
+        a = NOISE_SCALE_ALPHA
+        self._noise_tr = torch.where(usable, a * self._noise_tr + (1 - a) * tr, self._noise_tr)
+        self._noise_g2 = torch.where(usable, a * self._noise_g2 + (1 - a) * big_g2, self._noise_g2)
+        return self._noise_tr / self._noise_g2
+
+
+def init_seed(scenario: Scenario, seed: int) -> int:
+    """The seed of a member's initial weights: model.init_seed combined with its training seed."""
+    return int(np.random.SeedSequence([scenario.model.init_seed, seed]).generate_state(1)[0])
+
+
+def _rows(mask: torch.Tensor, like: torch.Tensor) -> torch.Tensor:
+    return mask.reshape(-1, *([1] * (like.dim() - 1)))
+
+
+def _stacked(value: object, param: torch.Tensor) -> bool:
+    return isinstance(value, torch.Tensor) and value.shape == param.shape
+
+
+def _lr_factor(scaling: str, batch: int, reference: int) -> float:
+    if scaling == "linear":
+        return batch / reference
+    if scaling == "sqrt":
+        return math.sqrt(batch / reference)
+    return 1.0
+
+
+def _make_optimizer(scenario: Scenario, theta: torch.Tensor, lr: float) -> torch.optim.Optimizer:
+    t = scenario.train
+    # All of these are element-wise, so one optimizer over the stacked rows is exact per member.
+    if t.optimizer == "sgd":
+        return torch.optim.SGD(
+            [theta], lr=lr, momentum=t.momentum, nesterov=t.nesterov, weight_decay=t.weight_decay
+        )
+    if t.optimizer == "adam":
+        return torch.optim.Adam([theta], lr=lr, weight_decay=t.weight_decay)
+    return torch.optim.AdamW([theta], lr=lr, weight_decay=t.weight_decay)

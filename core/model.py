@@ -1,0 +1,197 @@
+"""Stacks of K small models trained as one computation: parameters shaped (K, ...).
+
+The backward pass is written out by hand so that each linear layer's inputs `a` and
+output gradients `dz` are at hand: per-example gradient norms and re-weighted (clipped) sums
+both come from them without materialising a per-example gradient.
+"""
+
+from __future__ import annotations
+
+import math
+import typing
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from core.scenario import Scenario
+
+
+@dataclass(frozen=True)
+class Architecture:
+    sizes: tuple[int, ...]  # (inputs, hidden..., outputs)
+    activation: str
+    classification: bool
+    linear: bool  # a single layer, parameters named weight/bias
+
+    @property
+    def layers(self) -> int:
+        return len(self.sizes) - 1
+
+    @property
+    def param_names(self) -> tuple[str, ...]:
+        if self.linear:
+            return ("weight", "bias")
+        return tuple(f"l{i}.{kind}" for i in range(self.layers) for kind in ("weight", "bias"))
+
+
+def architecture(scenario: Scenario, dim: int) -> Architecture:
+    """The model of a scenario for inputs of `dim` features."""
+    out = scenario.data.classes if scenario.is_classification else 1
+    hidden = scenario.model.hidden if scenario.model.kind == "mlp" else ()
+    return Architecture(
+        sizes=(dim, *hidden, out),
+        activation=scenario.model.activation,
+        classification=scenario.is_classification,
+        linear=scenario.model.kind == "linear",
+    )
+
+
+@dataclass(frozen=True)
+class ParamLayout:
+    """Where each parameter lives in a member's flat parameter vector of size P."""
+
+    shapes: tuple[tuple[int, ...], ...]
+
+    @property
+    def sizes(self) -> tuple[int, ...]:
+        return tuple(math.prod(shape) for shape in self.shapes)
+
+    @property
+    def total(self) -> int:
+        return sum(self.sizes)
+
+    def views(self, flat: torch.Tensor) -> list[torch.Tensor]:
+        """Per-parameter views (K, *shape) of a (K, P) tensor; they share its storage."""
+        out, offset = [], 0
+        for shape, size in zip(self.shapes, self.sizes, strict=True):
+            out.append(flat[:, offset : offset + size].view(flat.shape[0], *shape))
+            offset += size
+        return out
+
+    @staticmethod
+    def flatten(tensors: list[torch.Tensor]) -> torch.Tensor:
+        """(K, P) from per-parameter tensors (K, *shape)."""
+        return torch.cat([t.reshape(t.shape[0], -1) for t in tensors], dim=1)
+
+
+def param_layout(arch: Architecture) -> ParamLayout:
+    shapes: list[tuple[int, ...]] = []
+    for fan_in, fan_out in zip(arch.sizes[:-1], arch.sizes[1:], strict=True):
+        shapes += [(fan_out, fan_in), (fan_out,)]
+    return ParamLayout(tuple(shapes))
+
+
+def init_params(arch: Architecture, seeds: list[int], dtype: torch.dtype) -> list[torch.Tensor]:
+    """Parameters [W0, b0, W1, b1, ...], each (K, out, in) or (K, out), one member per seed.
+
+    Each member draws U(-1/sqrt(in), 1/sqrt(in)) for weights and biases, the default of
+    torch.nn.Linear, from its own seed, so a member's start does not depend on its stack.
+    """
+    per_member = []
+    for seed in seeds:
+        rng = np.random.default_rng(np.random.SeedSequence([seed, 0x696E6974]))
+        tensors = []
+        for fan_in, fan_out in zip(arch.sizes[:-1], arch.sizes[1:], strict=True):
+            bound = 1.0 / math.sqrt(fan_in)
+            tensors.append(rng.uniform(-bound, bound, size=(fan_out, fan_in)))
+            tensors.append(rng.uniform(-bound, bound, size=(fan_out,)))
+        per_member.append(tensors)
+    return [
+        torch.tensor(np.stack([m[i] for m in per_member]), dtype=dtype)
+        for i in range(2 * arch.layers)
+    ]
+
+
+def forward(
+    arch: Architecture, params: list[torch.Tensor], x: torch.Tensor
+) -> tuple[list[torch.Tensor], list[torch.Tensor]]:
+    """Layer inputs a_l (K, B, in_l) and pre-activations z_l (K, B, out_l); z[-1] is the output."""
+    inputs, pre = [], []
+    # Shared inputs (validation data, (N, in)) go against every member without a copy.
+    a = x.expand(params[0].shape[0], -1, -1) if x.dim() == 2 else x
+    for layer in range(arch.layers):
+        weight, bias = params[2 * layer], params[2 * layer + 1]
+        inputs.append(a)
+        # A contiguous (in, out) copy of W is cheaper than a transposed operand in bmm.
+        z = torch.baddbmm(bias.unsqueeze(1), a, weight.transpose(1, 2).contiguous())
+        pre.append(z)
+        if layer < arch.layers - 1:
+            a = _activate(arch.activation, z)
+    return inputs, pre
+
+
+def _activate(name: str, z: torch.Tensor) -> torch.Tensor:
+    if name == "tanh":
+        return torch.tanh(z)
+    if name == "relu":
+        return torch.relu(z)
+    return torch.nn.functional.gelu(z)
+
+
+def _activation_backward(
+    name: str, grad: torch.Tensor, z: torch.Tensor, a: torch.Tensor
+) -> torch.Tensor:
+    """grad * act'(z), given a = act(z), with the fused kernels autograd itself uses."""
+    aten = torch.ops.aten
+    if name == "tanh":
+        out = aten.tanh_backward(grad, a)  # grad * (1 - a^2)
+    elif name == "relu":
+        out = aten.threshold_backward(grad, a, 0.0)  # grad where a > 0
+    else:
+        out = aten.gelu_backward(grad, z)  # exact GELU: Phi(z) + z phi(z)
+    return typing.cast(torch.Tensor, out)
+
+
+def example_losses(
+    arch: Architecture, out: torch.Tensor, y: torch.Tensor
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """Per-example loss (K, B) and its gradient with respect to the outputs (K, B, out).
+
+    Cross-entropy for classification; squared error (y_hat - y)^2 for regression, as the
+    per-example term of torch.nn.functional.mse_loss.
+    """
+    if arch.classification:
+        log_p = torch.log_softmax(out, dim=-1)
+        loss = -log_p.gather(-1, y.unsqueeze(-1)).squeeze(-1)
+        d_out = torch.exp(log_p)
+        d_out.scatter_add_(-1, y.unsqueeze(-1), torch.full_like(loss, -1.0).unsqueeze(-1))
+        return loss, d_out
+    residual = out.squeeze(-1) - y
+    return residual * residual, (2.0 * residual).unsqueeze(-1)
+
+
+def backward(
+    arch: Architecture,
+    params: list[torch.Tensor],
+    inputs: list[torch.Tensor],
+    pre: list[torch.Tensor],
+    d_out: torch.Tensor,
+) -> list[torch.Tensor]:
+    """Output gradients dz_l (K, B, out_l) of every layer, for each example's own loss."""
+    dz = [d_out]
+    for layer in range(arch.layers - 1, 0, -1):
+        weight = params[2 * layer]
+        grad_a = torch.bmm(dz[-1], weight)
+        dz.append(_activation_backward(arch.activation, grad_a, pre[layer - 1], inputs[layer]))
+    dz.reverse()
+    return dz
+
+
+@torch.no_grad()
+def evaluate(
+    arch: Architecture, params: list[torch.Tensor], x: torch.Tensor, y: torch.Tensor
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """Mean loss (K,) and accuracy or R^2 (K,) of every member on shared data."""
+    _, pre = forward(arch, params, x)
+    out = pre[-1]
+    if arch.classification:
+        loss = torch.nn.functional.cross_entropy(
+            out.transpose(1, 2), y.expand(out.shape[0], -1), reduction="none"
+        ).mean(dim=1)
+        accuracy = (out.argmax(dim=-1) == y).to(out.dtype).mean(dim=1)
+        return loss, accuracy
+    residual = out.squeeze(-1) - y
+    ss_res = (residual * residual).sum(dim=1)
+    ss_tot = ((y - y.mean()) ** 2).sum()
+    return ss_res / y.shape[0], 1.0 - ss_res / ss_tot
