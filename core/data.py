@@ -8,10 +8,7 @@ import numpy as np
 
 from core.outliers import corrupt
 from core.scenario import Scenario
-from core.tasks import draw_task
-
-# Stream names keep the data, the outliers and the batches independent of one another.
-_TASK_STREAM, _OUTLIER_STREAM = 1, 2
+from core.tasks import TASKS
 
 
 @dataclass(frozen=True)
@@ -60,19 +57,20 @@ def pool_size(scenario: Scenario) -> int:
 
 
 def build_dataset(scenario: Scenario) -> Dataset:
-    """Draw the task, split it and inject the outliers, all from data.seed."""
+    """Draw the task, split it and inject the outliers, all from data.seed.
+
+    The task's parameters, the train/validation samples, the outlier pool and the corruption
+    each have their own stream, so turning outliers on leaves the clean data as it was.
+    """
     cfg, o = scenario.data, scenario.outliers
-    seed = np.random.SeedSequence(cfg.seed)
-    task_seq, outlier_seq = seed.spawn(2)
-    n_pool = pool_size(scenario)
-    sample = draw_task(cfg, cfg.n_train + cfg.n_val + n_pool, np.random.default_rng(task_seq))
-    x, y = sample.x, sample.y
+    param_seq, sample_seq, pool_seq, outlier_seq = np.random.SeedSequence(cfg.seed).spawn(4)
+    task = TASKS[cfg.task]
+    params = task.params(cfg, np.random.default_rng(param_seq))
+    x, y = task.sample(cfg, params, cfg.n_train + cfg.n_val, np.random.default_rng(sample_seq))
     x_train, y_train = x[: cfg.n_train], y[: cfg.n_train]
-    x_val, y_val = (
-        x[cfg.n_train : cfg.n_train + cfg.n_val],
-        y[cfg.n_train : cfg.n_train + cfg.n_val],
-    )
+    x_val, y_val = x[cfg.n_train :], y[cfg.n_train :]
     classes = cfg.classes if scenario.is_classification else 0
+    n_pool = pool_size(scenario)
     outlier = np.zeros(cfg.n_train + n_pool, dtype=bool)
 
     if o.kind != "none":
@@ -88,15 +86,8 @@ def build_dataset(scenario: Scenario) -> Dataset:
             )
             outlier[bad] = True
         else:
-            x_pool, y_pool = corrupt(
-                o.kind,
-                x[cfg.n_train + cfg.n_val :],
-                y[cfg.n_train + cfg.n_val :],
-                o.scale,
-                direction,
-                classes,
-                rng,
-            )
+            x_fresh, y_fresh = task.sample(cfg, params, n_pool, np.random.default_rng(pool_seq))
+            x_pool, y_pool = corrupt(o.kind, x_fresh, y_fresh, o.scale, direction, classes, rng)
             x_train = np.concatenate([x_train, x_pool])
             y_train = np.concatenate([y_train, y_pool])
             outlier[cfg.n_train :] = True
@@ -109,5 +100,5 @@ def build_dataset(scenario: Scenario) -> Dataset:
         y_val=np.ascontiguousarray(y_val),
         n_train=cfg.n_train,
         classes=classes,
-        truth=sample.truth,
+        truth=params,
     )

@@ -385,8 +385,25 @@ def parse_scenario(raw: Mapping[str, Any], source: str = "<scenario>", path: str
     else:
         clips = tuple(_resolve_clip(c) for c in clips)
     scenario = dataclasses.replace(scenario, clip=clips)
+    sweep_raw = raw.get("sweep")
+    if not (isinstance(sweep_raw, Mapping) and "batch_sizes" in sweep_raw):
+        scenario = _fit_default_batch_sizes(scenario)
     _check_consistency(scenario, reader, path)
     return scenario
+
+
+def _fit_default_batch_sizes(s: Scenario) -> Scenario:
+    """Keep the default sweep batch sizes that the rest of the preset can use."""
+
+    def fits(b: int) -> bool:
+        if b > s.data.n_train:
+            return False
+        if s.outliers.kind != "none" and s.outliers.placement == "batch" and s.outliers.count > b:
+            return False
+        return all(b % c.microbatch == 0 for c in s.clip if c.method == "microbatch-norm")
+
+    sizes = tuple(b for b in SweepConfig().batch_sizes if fits(b)) or (s.train.batch_size,)
+    return dataclasses.replace(s, sweep=dataclasses.replace(s.sweep, batch_sizes=sizes))
 
 
 def _join(path: str, key: str) -> str:
