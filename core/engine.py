@@ -215,6 +215,7 @@ class StackPass:
             i: torch.Generator().manual_seed(int(members[i].seed) * 7919 + 1) for i in self.noisy
         }
 
+    @torch.no_grad()
     def run(
         self,
         params: list[torch.Tensor],
@@ -486,9 +487,9 @@ class Engine:
 
         start = init_params(self.arch, [init_seed(scenario, m.seed) for m in members], dtype)
         # All of a member's parameters live in one row of theta (K, P); the model reads views.
-        self.theta = ParamLayout.flatten(start).requires_grad_(True)
-        with torch.no_grad():
-            self.params = self.layout.views(self.theta)
+        # No autograd anywhere: the backward is written out and the optimizer reads theta.grad.
+        self.theta = ParamLayout.flatten(start)
+        self.params = self.layout.views(self.theta)
         self.initial = [p.clone() for p in start]
         self.optimizer = _make_optimizer(scenario, self.theta, self.lr)
         self.grad_pass = StackPass(

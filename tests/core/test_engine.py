@@ -1,0 +1,186 @@
+"""The engine against closed forms, and its guarantees: stacking changes nothing, runs repeat."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import torch
+
+from core import api
+from core.engine import Engine, Member, run_members
+from core.results import collect
+from core.scenario import ClipConfig, Scenario, parse_scenario
+
+
+def frozen_linear(n_train: int = 2048, dim: int = 8, noise: float = 0.5) -> Scenario:
+    """A linear task whose weights barely move (lr 1e-12): every batch sees the same model."""
+    return parse_scenario(
+        {
+            "data": {"task": "linear", "dim": dim, "n_train": n_train, "n_val": 64, "noise": noise},
+            "model": {"kind": "linear"},
+            "train": {"steps": 4000, "lr": 1e-12, "eval_every": 1},
+            "clip": [{"method": "none"}],
+        }
+    )
+
+
+def population_gradients(engine: Engine) -> np.ndarray:
+    """Exact per-example gradients (N, P) of (y_hat - y)^2 for the linear model at its start."""
+    w = engine.initial[0][0].double().numpy()  # (1, dim)
+    b = engine.initial[1][0].double().numpy()  # (1,)
+    x = engine.dataset.x_train[: engine.dataset.n_train]
+    y = engine.dataset.y_train[: engine.dataset.n_train]
+    residual = x @ w[0] + b[0] - y
+    return 2.0 * residual[:, None] * np.column_stack([x, np.ones(len(x))])
+
+
+@pytest.mark.parametrize("batch", [4, 64, 1024])
+def test_batch_mean_norm_follows_the_closed_form_with_finite_population(batch: int) -> None:
+    # E|g_B|^2 = |G|^2 + tr(Sigma)/B * (N - B)/(N - 1) for B drawn without replacement from N.
+    scenario = frozen_linear()
+    engine = Engine(scenario, run_members(scenario), batch)
+    g = population_gradients(engine)
+    n = len(g)
+    mean = g.mean(axis=0)
+    trace = ((g - mean) ** 2).sum(axis=1).mean()  # tr(Sigma) with the population's 1/N
+    expected = mean @ mean + trace / batch * (n - batch) / (n - 1)
+    measured = collect(engine).metric("grad_norm_pre")[:, 0].astype(np.float64) ** 2
+    standard_error = measured.std() / math.sqrt(len(measured))  # steps draw independent batches
+    assert abs(measured.mean() - expected) < 4 * standard_error
+    if batch == 1024:  # the finite-population factor (about 1/2 here) is what makes it hold
+        assert abs(measured.mean() - (mean @ mean + trace / batch)) > 4 * standard_error
+
+
+@pytest.mark.slow
+def test_noise_scale_estimate_is_centred_on_the_exact_b_simple() -> None:
+    # McCandlish et al. 2018: B_simple = tr(Sigma) / |G|^2, here from all per-example gradients.
+    errors = []
+    for seed in range(12):
+        scenario = frozen_linear(noise=2.0).with_overrides(
+            {"data.seed": seed, "train.seed": seed, "train.steps": 1500}
+        )
+        engine = Engine(scenario, run_members(scenario), 64)
+        g = population_gradients(engine)
+        mean = g.mean(axis=0)
+        exact = ((g - mean) ** 2).sum(axis=1).mean() / (mean @ mean)
+        errors.append(collect(engine).final("noise_scale")[0] / exact - 1.0)
+    errors_array = np.asarray(errors)
+    # One run averages about 40 batches (exponential weight 0.95): its relative error has an sd
+    # of about 0.10 (measured over these seeds). Over 12 seeds the mean error must be within
+    # three standard errors of zero, and no run may be off by more than four sd.
+    spread = errors_array.std(ddof=1)
+    assert abs(errors_array.mean()) < 3 * spread / math.sqrt(len(errors_array))
+    assert np.abs(errors_array).max() < 0.4
+
+
+def test_noise_scale_grows_as_the_loss_falls() -> None:
+    # McCandlish et al. 2018 (c): B_simple grows as training progresses.
+    scenario = parse_scenario(
+        {
+            "data": {"task": "linear", "dim": 8, "n_train": 2048, "noise": 0.5},
+            "model": {"kind": "linear"},
+            "train": {"steps": 600, "lr": 0.02, "batch_size": 64, "eval_every": 1},
+            "clip": [{"method": "none"}],
+        }
+    )
+    result = api.run(scenario)
+    scale = result.metric("noise_scale")[:, 0]
+    assert result.metric("val_loss")[-1, 0] < 0.5 * result.metric("val_loss")[0, 0]
+    assert np.median(scale[-100:]) > 3 * np.median(scale[20:60])
+
+
+STACK_PRESET = {
+    "data": {"task": "blobs", "noise": 1.2, "n_train": 1000},
+    "outliers": {"kind": "label-flip", "placement": "batch", "rate": 0.3, "count": 2},
+    "train": {
+        "steps": 120,
+        "batch_size": 32,
+        "eval_every": 10,
+        "optimizer": "sgd",
+        "momentum": 0.9,
+    },
+}
+
+
+def test_a_member_trained_alone_equals_the_same_member_in_a_stack_of_16() -> None:
+    # Each member's rows of every batched matmul are computed independently, and SGD is
+    # element-wise, so we expect identical numbers; 1e-5 relative is the stated bound.
+    target = ClipConfig(method="example-norm", threshold=0.8)
+    others = [
+        ClipConfig(method=m, threshold=t, label=f"{m} {t}")
+        for m, t in [
+            ("global-norm", 0.1),
+            ("global-norm", 1.0),
+            ("value", 0.01),
+            ("tensor-norm", 0.3),
+            ("unit-agc", 0.01),
+            ("unit-agc", 0.1),
+            ("example-agc", 0.02),
+            ("example-norm", 0.1),
+            ("example-norm", 5.0),
+            ("microbatch-norm", 0.5),
+            ("global-norm", 0.01),
+            ("value", 0.1),
+            ("tensor-norm", 3.0),
+            ("example-agc", 0.2),
+            ("microbatch-norm", 2.0),
+        ]
+    ]
+    scenario = parse_scenario(STACK_PRESET)
+    alone = collect(Engine(scenario, [Member(target, 0)]))
+    stacked = collect(Engine(scenario, [Member(c, 0) for c in [*others[:7], target, *others[7:]]]))
+    assert len(stacked.members) == 16
+    for name, values in alone.metrics.items():
+        np.testing.assert_allclose(stacked.metrics[name][:, 7], values[:, 0], rtol=1e-5, atol=0)
+
+
+def test_members_with_the_same_seed_share_batches_and_start() -> None:
+    scenario = parse_scenario(STACK_PRESET)
+    engine = Engine(
+        scenario,
+        [
+            Member(ClipConfig(method="none"), 0),
+            Member(ClipConfig(method="global-norm", threshold=0.1), 0),
+            Member(ClipConfig(method="none"), 1),
+        ],
+    )
+    np.testing.assert_array_equal(engine.batch_indices(0), engine.batch_indices(1))
+    assert not np.array_equal(engine.batch_indices(0), engine.batch_indices(2))
+    for p in engine.initial:
+        torch.testing.assert_close(p[0], p[1], rtol=0, atol=0)
+        assert not torch.equal(p[0], p[2])
+
+
+def test_the_same_run_twice_gives_identical_arrays() -> None:
+    scenario = parse_scenario(STACK_PRESET)
+    first, second = api.run(scenario), api.run(scenario)
+    for name in first.metrics:
+        np.testing.assert_array_equal(first.metrics[name], second.metrics[name])
+
+
+def test_skipping_a_spike_keeps_parameters_and_optimizer_state() -> None:
+    scenario = parse_scenario(
+        {
+            **STACK_PRESET,
+            "train": {**STACK_PRESET["train"], "steps": 60},
+            "clip": [
+                {
+                    "method": "global-norm",
+                    "threshold": 1e-6,
+                    "on_spike": "skip",
+                    "skip_factor": 1.0,
+                    "label": "always skips",
+                },
+                {"method": "none"},
+            ],
+        }
+    )
+    engine = Engine(scenario, run_members(scenario))
+    result = collect(engine)
+    torch.testing.assert_close(engine.params[0][0], engine.initial[0][0], rtol=0, atol=0)
+    assert not torch.equal(engine.params[0][1], engine.initial[0][1])
+    momentum = engine.optimizer.state[engine.theta]["momentum_buffer"]
+    assert float(momentum[0].abs().max()) == 0.0
+    np.testing.assert_array_equal(result.metric("update_norm")[:, 0], 0.0)
