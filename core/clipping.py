@@ -11,6 +11,7 @@ Shapes: k members of this method, B examples, layer l maps in_l -> out_l.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import torch
@@ -27,7 +28,7 @@ def example_sq_norms(inputs: list[torch.Tensor], dz: list[torch.Tensor]) -> torc
     """Per-example squared gradient norm (K, B): sum_l |dz_l|^2 (|a_l|^2 + 1)."""
     total = torch.zeros_like(dz[0][..., 0])
     for a, d in zip(inputs, dz, strict=True):
-        total = total + (d * d).sum(-1) * ((a * a).sum(-1) + 1.0)
+        total = total.addcmul_(torch.linalg.vecdot(d, d), torch.linalg.vecdot(a, a) + 1.0)
     return total
 
 
@@ -36,11 +37,20 @@ def _cap(threshold: torch.Tensor, norm: torch.Tensor) -> torch.Tensor:
     return torch.clamp(threshold / norm, max=1.0)
 
 
-def example_norm(norms: torch.Tensor, threshold: torch.Tensor, layers: int) -> ExampleWeights:
+def _share_over(values: torch.Tensor, threshold: torch.Tensor, wanted: bool) -> torch.Tensor:
+    """Share of the values (k, n) above each member's threshold (k,); NaN when not wanted."""
+    if not wanted:
+        return torch.full_like(threshold, math.nan)
+    return (values > threshold[:, None]).to(values.dtype).mean(dim=1)
+
+
+def example_norm(
+    norms: torch.Tensor, threshold: torch.Tensor, layers: int, share: bool = True
+) -> ExampleWeights:
     """DP-SGD style: g_i <- g_i * min(1, C / |g_i|). norms (k, B), threshold (k,)."""
     scale = _cap(threshold[:, None], norms)  # (k, B)
-    share = (norms > threshold[:, None]).to(norms.dtype).mean(dim=1)
-    return ExampleWeights([scale.unsqueeze(-1)] * layers, [scale] * layers, share)
+    rows = scale.unsqueeze(-1)
+    return ExampleWeights([rows] * layers, [scale] * layers, _share_over(norms, threshold, share))
 
 
 def microbatch_group_norms(
@@ -67,12 +77,12 @@ def microbatch_group_norms(
 
 
 def microbatch_norm(
-    group_norms: torch.Tensor, threshold: torch.Tensor, group: int, layers: int
+    group_norms: torch.Tensor, threshold: torch.Tensor, group: int, layers: int, share: bool = True
 ) -> ExampleWeights:
     """Clip each group's mean gradient to the threshold; every example takes its group's scale."""
     scale = _cap(threshold[:, None], group_norms).repeat_interleave(group, dim=1)  # (k, B)
-    share = (group_norms > threshold[:, None]).to(group_norms.dtype).mean(dim=1)
-    return ExampleWeights([scale.unsqueeze(-1)] * layers, [scale] * layers, share)
+    clipped = _share_over(group_norms, threshold, share)
+    return ExampleWeights([scale.unsqueeze(-1)] * layers, [scale] * layers, clipped)
 
 
 def unit_ratios(

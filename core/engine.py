@@ -24,7 +24,7 @@ from core.model import (
     ParamLayout,
     architecture,
     backward,
-    evaluate,
+    Evaluator,
     example_losses,
     forward,
     init_params,
@@ -32,7 +32,7 @@ from core.model import (
 )
 from core.rules import FixedRule, Rule, make_rule
 from core.sampler import plan_batches
-from core.scenario import PER_EXAMPLE_METHODS, ClipConfig, Scenario
+from core.scenario import PER_EXAMPLE_METHODS, ClipConfig, Scenario, resolve_clip
 
 # A member whose clean batch loss exceeds this multiple of its starting validation loss (or 1,
 # whichever is larger) has diverged, as has one whose loss or gradient is not finite.
@@ -205,10 +205,22 @@ class StackPass:
                 )
             )
         self.want_norms = False  # set by an engine that traces per-example norms
+        # Set by an engine whose data holds non-finite values; then per-example methods check
+        # every batch for examples to drop (finite data cannot make a finite model's norm inf).
+        self.data_nonfinite = True
         self.per_example = torch.tensor([m.method in PER_EXAMPLE_METHODS for m in members])
         self.any_per_example = bool(self.per_example.any())
+        # A single group over the whole stack with one weight per example: the weighted dz of
+        # the weight rows serves the bias too.
+        self.scalar_weights = (
+            len(self.groups) == 1
+            and self.groups[0].whole
+            and self.groups[0].method in ("example-norm", "microbatch-norm")
+        )
         self.skips = torch.tensor([m.clip.on_spike == "skip" for m in members])
         self.any_skip = bool(self.skips.any())
+        self.no_skip = torch.zeros(len(members), dtype=torch.bool)
+        self._empty = torch.empty(0, dtype=dtype)
         self.skip_factor = torch.tensor([m.clip.skip_factor for m in members], dtype=dtype)
         self.noisy = [i for i, m in enumerate(members) if m.clip.noise_multiplier > 0]
         self.noise_generators = {
@@ -240,7 +252,8 @@ class StackPass:
             raw_norms = norms = torch.sqrt(sq)
         # Between logged steps a stack of batch-mean methods never looks at per-example norms.
 
-        if norms is not None and self.any_per_example and not bool(torch.isfinite(norms).all()):
+        maybe_nonfinite = self.data_nonfinite and self.any_per_example
+        if norms is not None and maybe_nonfinite and not bool(torch.isfinite(norms).all()):
             # Per-example methods drop an example whose gradient is not finite (its norm is
             # above any threshold); batch-mean methods see the non-finite mean, as in practice.
             keep = (torch.isfinite(norms) | ~self.per_example[:, None]).unsqueeze(-1)
@@ -259,18 +272,25 @@ class StackPass:
                 batch_groups.append(g)
                 continue
             if rows_w is None or bias_w is None:
-                rows_w = [torch.ones_like(d) for d in dz]
-                bias_w = [torch.ones_like(d[..., 0]) for d in dz]
+                if len(self.groups) == 1 and g.whole:  # the group's weights are all there is
+                    rows_w = [torch.empty(0, dtype=self.dtype)] * arch.layers
+                    bias_w = [torch.empty(0, dtype=self.dtype)] * arch.layers
+                else:
+                    rows_w = [torch.ones_like(d) for d in dz]
+                    bias_w = [torch.ones_like(d[..., 0]) for d in dz]
             sub_inputs = [g.take(a) for a in inputs]
             sub_dz = [g.take(d) for d in dz]
             assert norms is not None  # computed whenever a per-example method is present
             weights, seen, level = self._example_weights(
-                g, sub_inputs, sub_dz, g.take(norms), params, 1.0 / reduce
+                g, sub_inputs, sub_dz, g.take(norms), params, 1.0 / reduce, detail
             )
             watched, levels = g.put(watched, seen), g.put(levels, level)
             share = g.put(share, weights.clipped_share)
             for layer in range(arch.layers):
-                rows_w[layer] = g.put(rows_w[layer], weights.rows[layer].expand_as(sub_dz[layer]))
+                rows = weights.rows[layer]
+                rows_w[layer] = g.put(
+                    rows_w[layer], rows if g.whole else rows.expand_as(sub_dz[layer])
+                )
                 bias_w[layer] = g.put(bias_w[layer], weights.bias[layer])
 
         flat, parts = self._weighted_sums(inputs, dz, rows_w, bias_w, outlier, detail)
@@ -306,16 +326,15 @@ class StackPass:
                 )
                 flat[i] += sigma * noise
 
+        skip = self.no_skip
         if self.any_skip:
             skip = self.skips & ~(watched <= self.skip_factor * levels)
-        else:
-            skip = torch.zeros(K, dtype=torch.bool)
         return PassResult(flat, loss, raw_norms, watched, levels, share, skip, detail_stats)
 
     def blank(self, K: int, fill: float) -> torch.Tensor:
         """A per-member buffer; empty when one group spans the stack and will replace it."""
         if len(self.groups) == 1 and self.groups[0].whole:
-            return torch.empty(0, dtype=self.dtype)
+            return self._empty
         return torch.full((K,), fill, dtype=self.dtype)
 
     def _example_weights(
@@ -326,23 +345,28 @@ class StackPass:
         norms: torch.Tensor,
         params: list[torch.Tensor],
         unreduce: float,
+        detail: bool,
     ) -> tuple[clipping.ExampleWeights, torch.Tensor, torch.Tensor]:
         layers = self.arch.layers
+        # The watched quantity feeds adaptive rules and spike skipping only; skip it otherwise.
+        watch = g.adaptive or self.any_skip
+        nothing = torch.full((len(g.positions),), math.nan, dtype=self.dtype)
         if g.method == "example-norm":
-            seen = norms.amax(dim=1)
+            seen = norms.amax(dim=1) if watch else nothing
             level = g.levels(seen)
-            return clipping.example_norm(norms, level, layers), seen, level
+            return clipping.example_norm(norms, level, layers, detail), seen, level
         if g.method == "microbatch-norm":
             group_norms = clipping.microbatch_group_norms(inputs, dz, g.microbatch) * unreduce
-            seen = group_norms.amax(dim=1)
+            seen = group_norms.amax(dim=1) if watch else nothing
             level = g.levels(seen)
-            return clipping.microbatch_norm(group_norms, level, g.microbatch, layers), seen, level
+            weights = clipping.microbatch_norm(group_norms, level, g.microbatch, layers, detail)
+            return weights, seen, level
         sub_params = [g.take(p) for p in params]
         ratios = clipping.unit_ratios(inputs, dz, sub_params, g.eps, self.clipped_layers, unreduce)
-        if self.clipped_layers:
+        if watch and self.clipped_layers:
             seen = clipping.example_agc_watch(ratios)
         else:
-            seen = torch.zeros(len(g.positions), dtype=self.dtype)
+            seen = torch.zeros(len(g.positions), dtype=self.dtype) if watch else nothing
         level = g.levels(seen)
         return clipping.example_agc(ratios, level, layers), seen, level
 
@@ -383,8 +407,11 @@ class StackPass:
             rows, bias = [d], [d]
             if weighted:
                 assert rows_w is not None and bias_w is not None
-                rows.insert(0, d * rows_w[layer])
-                bias.insert(0, d * bias_w[layer].unsqueeze(-1))
+                weighted_d = d * rows_w[layer]
+                rows.insert(0, weighted_d)
+                # One weight per example (example-norm, microbatch-norm): rows and bias share it.
+                shared = self.scalar_weights
+                bias.insert(0, weighted_d if shared else d * bias_w[layer].unsqueeze(-1))
                 if not detail:
                     rows, bias = rows[:1], bias[:1]
             out = d.shape[-1]
@@ -456,7 +483,9 @@ class Engine:
         if not members:
             raise ValueError("an engine needs at least one member")
         self.scenario = scenario
-        self.members = members
+        self.members = members = [
+            dataclasses.replace(m, clip=resolve_clip(m.clip)) for m in members
+        ]
         self.batch_size = batch_size or scenario.train.batch_size
         self.dataset = dataset if dataset is not None else build_dataset(scenario)
         self.dtype = dtype
@@ -484,6 +513,7 @@ class Engine:
         self.n_clean_train = float((~self.outlier_train[: ds.n_train]).sum())
         self.x_val = torch.as_tensor(ds.x_val, dtype=dtype)
         self.y_val = torch.as_tensor(ds.y_val, dtype=y_dtype)
+        self.evaluator = Evaluator(self.arch, self.x_val, self.y_val, len(members))
 
         start = init_params(self.arch, [init_seed(scenario, m.seed) for m in members], dtype)
         # All of a member's parameters live in one row of theta (K, P); the model reads views.
@@ -496,9 +526,13 @@ class Engine:
             self.arch, members, train.loss_reduction, scenario.model.exclude_head, dtype
         )
         self.grad_pass.want_norms = trace
+        self.grad_pass.data_nonfinite = not (
+            bool(torch.isfinite(self.x_train).all()) and bool(torch.isfinite(self.y_train).all())
+        )
         K = len(members)
         self.example_norms = np.zeros((K, self.steps, self.batch_size)) if trace else None
         self.alive = torch.ones(K, dtype=torch.bool)
+        self.nobody = torch.zeros(K, dtype=torch.bool)
         self.any_dead = False
         self.diverged_at: list[int | None] = [None] * K
         self._noise_tr = torch.zeros(K, dtype=torch.float64)
@@ -511,7 +545,7 @@ class Engine:
     def records(self) -> Iterator[StepRecord]:
         """Train step by step; yield a record at every multiple of eval_every and at the end."""
         with torch.no_grad():
-            start_loss, _ = evaluate(self.arch, self.params, self.x_val, self.y_val)
+            start_loss, _ = self.evaluator(self.params)
             explode = EXPLODE_FACTOR * torch.clamp(start_loss, min=1.0)
             every = self.scenario.train.eval_every
             for step in range(1, self.steps + 1):
@@ -538,10 +572,12 @@ class Engine:
         else:
             clean_loss = result.loss.mean(dim=1)
         # A skipped spike may carry a non-finite gradient; a bad clean loss is never excused.
-        loss_ok = clean_loss <= explode
-        grad_ok = torch.isfinite(result.grads.sum(dim=1)) | result.skip
-        ok = loss_ok & grad_ok
-        newly = torch.zeros_like(self.alive)
+        total = result.grads.sum(dim=1)
+        grad_ok = (total - total) == 0  # false for inf and NaN
+        if self.grad_pass.any_skip:
+            grad_ok |= result.skip
+        ok = (clean_loss <= explode) & grad_ok
+        newly = self.nobody
         if not bool(ok.all()):
             newly = self.alive & ~ok
             for i in torch.nonzero(newly).flatten().tolist():
@@ -586,7 +622,7 @@ class Engine:
         detail = result.detail
         if detail is None or before is None:
             raise RuntimeError("a logged step must carry its detail statistics")
-        val_loss, val_metric = evaluate(self.arch, self.params, self.x_val, self.y_val)
+        val_loss, val_metric = self.evaluator(self.params)
         delta = self.theta.detach() - before
         update_norm = torch.linalg.vector_norm(delta, dim=1)
         clean_sum = detail["clean_sum"]

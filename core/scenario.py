@@ -380,10 +380,10 @@ def parse_scenario(raw: Mapping[str, Any], source: str = "<scenario>", path: str
         for i, item in enumerate(clips_raw):
             item_path = f"{_join(path, 'clip')}[{i}]"
             item = _grids_to_lists(item, reader, item_path, "sweep", nested=False)
-            parsed.append(_resolve_clip(reader.table(ClipConfig, item, item_path)))
+            parsed.append(resolve_clip(reader.table(ClipConfig, item, item_path)))
         clips = tuple(parsed)
     else:
-        clips = tuple(_resolve_clip(c) for c in clips)
+        clips = tuple(resolve_clip(c) for c in clips)
     scenario = dataclasses.replace(scenario, clip=clips)
     sweep_raw = raw.get("sweep")
     if not (isinstance(sweep_raw, Mapping) and "batch_sizes" in sweep_raw):
@@ -410,7 +410,8 @@ def _join(path: str, key: str) -> str:
     return f"{path}.{key}" if path else key
 
 
-def _resolve_clip(clip: ClipConfig) -> ClipConfig:
+def resolve_clip(clip: ClipConfig) -> ClipConfig:
+    """The clip table with its method's default threshold filled in."""
     if clip.threshold is None and clip.method != "none":
         return dataclasses.replace(clip, threshold=DEFAULT_THRESHOLD[clip.method])
     if clip.method == "none":

@@ -1,0 +1,180 @@
+"""Engine benchmarks, each against a baseline measured in the same run, on one thread.
+
+1. example-norm step time over global-norm step time in this engine (B = 256, 2-64-64-2 MLP).
+2. the engine's example-norm step against a torch.func vmap(grad) per-example step (B = 256).
+3. a 32-member threshold stack (B = 32) against 32 sequential runs of a plain nn.Module loop
+   with clip_grad_norm_, both validating every 50 steps on the same 500 examples (headline).
+"""
+
+from __future__ import annotations
+
+import statistics
+import sys
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+import torch
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from core.engine import Engine, Member  # noqa: E402
+from core.reference import module_for  # noqa: E402
+from core.scenario import ClipConfig, Scenario, parse_scenario  # noqa: E402
+
+ROUNDS = 7
+
+
+def paired(first: Callable[[], None], second: Callable[[], None]) -> tuple[float, float, float]:
+    """Median times of two workloads run in alternation, and the median of their ratios.
+
+    Alternating round by round keeps a slow spell of a shared machine from landing on one side.
+    """
+    first()  # warm-up: allocations, kernels, caches
+    second()
+    times_a, times_b, ratios = [], [], []
+    for _ in range(ROUNDS):
+        start = time.perf_counter()
+        first()
+        middle = time.perf_counter()
+        second()
+        end = time.perf_counter()
+        times_a.append(middle - start)
+        times_b.append(end - middle)
+        ratios.append((end - middle) / (middle - start))
+    return statistics.median(times_a), statistics.median(times_b), statistics.median(ratios)
+
+
+STEPS = 300
+
+
+def scenario(batch: int, steps: int, eval_every: int) -> Scenario:
+    return parse_scenario(
+        {
+            "data": {
+                "task": "blobs",
+                "dim": 2,
+                "classes": 2,
+                "noise": 1.0,
+                "n_train": 4096,
+                "n_val": 500,
+            },
+            "outliers": {"kind": "label-flip", "placement": "batch", "rate": 0.1},
+            "model": {"hidden": [64, 64], "activation": "tanh"},
+            "train": {"steps": steps, "batch_size": batch, "eval_every": eval_every, "lr": 0.05},
+        }
+    )
+
+
+def engine_steps(method: str, batch: int = 256) -> Callable[[], None]:
+    s = scenario(batch, STEPS, eval_every=STEPS)  # one logged step at the end
+
+    def run() -> None:
+        engine = Engine(s, [Member(ClipConfig(method=method, threshold=1.0), 0)])
+        for _ in engine.records():
+            pass
+
+    return run
+
+
+def vmap_steps(batch: int = 256, steps: int = STEPS) -> Callable[[], None]:
+    """A careful torch.func baseline: vmap(grad) per-example gradients, vectorised clipping."""
+    s = scenario(batch, steps, eval_every=steps)
+    engine = Engine(s, [Member(ClipConfig(method="example-norm"), 0)])
+    x_all, y_all = engine.x_train, engine.y_train
+    batches = engine.batches[0]
+    model = module_for(engine.arch)
+    names = [n for n, _ in model.named_parameters()]
+
+    def loss_of(p: dict[str, torch.Tensor], xi: torch.Tensor, yi: torch.Tensor) -> torch.Tensor:
+        out = torch.func.functional_call(model, p, (xi.unsqueeze(0),))
+        return torch.nn.functional.cross_entropy(out, yi.unsqueeze(0))
+
+    per_example = torch.func.vmap(torch.func.grad(loss_of), in_dims=(None, 0, 0))
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
+
+    def run() -> None:
+        for step in range(steps):
+            rows = batches[step]
+            params = {n: p.detach() for n, p in model.named_parameters()}
+            grads = per_example(params, x_all[rows], y_all[rows])
+            norms = torch.sqrt(sum((grads[n].flatten(1) ** 2).sum(1) for n in names))
+            scale = torch.clamp(1.0 / norms, max=1.0)  # threshold 1.0
+            for n, p in model.named_parameters():
+                p.grad = (grads[n] * scale.view(-1, *[1] * (grads[n].dim() - 1))).mean(0)
+            optimizer.step()
+
+    return run
+
+
+def stack_steps(members: int = 32, batch: int = 32, steps: int = 300) -> float:
+    s = scenario(batch, steps, eval_every=50)
+    thresholds = np.geomspace(0.01, 10.0, members)
+    clips = [
+        ClipConfig(method="global-norm", threshold=float(t), label=f"t{i}")
+        for i, t in enumerate(thresholds)
+    ]
+
+    def run() -> None:
+        engine = Engine(s, [Member(c, 0) for c in clips])
+        for _ in engine.records():
+            pass
+
+    return run
+
+
+def sequential_steps(members: int = 32, batch: int = 32, steps: int = 300) -> float:
+    """What one would write without Gradfence: a plain loop per threshold, one after another."""
+    s = scenario(batch, steps, eval_every=50)
+    engine = Engine(s, [Member(ClipConfig(method="none"), 0)])
+    x_all, y_all, x_val, y_val = engine.x_train, engine.y_train, engine.x_val, engine.y_val
+    batches = engine.batches[0]
+    thresholds = np.geomspace(0.01, 10.0, members)
+
+    def run() -> None:
+        for threshold in thresholds:
+            torch.manual_seed(0)
+            model = module_for(engine.arch)
+            optimizer = torch.optim.SGD(model.parameters(), lr=0.05)
+            for step in range(steps):
+                rows = batches[step]
+                loss = torch.nn.functional.cross_entropy(model(x_all[rows]), y_all[rows])
+                optimizer.zero_grad()
+                loss.backward()
+                torch.nn.utils.clip_grad_norm_(model.parameters(), float(threshold))
+                optimizer.step()
+                if (step + 1) % 50 == 0:
+                    with torch.no_grad():
+                        torch.nn.functional.cross_entropy(model(x_val), y_val)
+
+    return run
+
+
+def main() -> None:
+    torch.set_num_threads(1)
+    global_t, example_t, example_ratio = paired(
+        engine_steps("global-norm"), engine_steps("example-norm")
+    )
+    engine_t, vmap_t, vmap_ratio = paired(engine_steps("example-norm"), vmap_steps())
+    stack_t, sequential_t, stack_ratio = paired(stack_steps(), sequential_steps())
+    ms = 1e3 / STEPS
+    print(
+        f"global-norm step, B=256: {global_t * ms:.3f} ms; example-norm step: {example_t * ms:.3f} ms"
+    )
+    print(
+        f"engine example-norm step: {engine_t * ms:.3f} ms; torch.func vmap(grad): {vmap_t * ms:.3f} ms"
+    )
+    print(
+        f"32-member stack, {STEPS} steps at B=32: {stack_t:.3f} s; 32 sequential runs: {sequential_t:.3f} s"
+    )
+    print(
+        f"(medians of {ROUNDS} alternating rounds, one thread, ratios are medians of per-round ratios)"
+    )
+    print(f"example_over_global_step: {example_ratio:.2f} x (target <= 1.25)")
+    print(f"engine_over_vmap_example_step: {vmap_ratio:.1f} x faster (target >= 5)")
+    print(f"stack32_over_sequential: {stack_ratio:.1f} x faster (target >= 10)")
+
+
+if __name__ == "__main__":
+    main()
