@@ -19,9 +19,9 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from core.engine import Engine, Member  # noqa: E402
-from core.reference import module_for  # noqa: E402
-from core.scenario import ClipConfig, Scenario, parse_scenario  # noqa: E402
+from core.engine import Engine, Member
+from core.reference import module_for
+from core.scenario import ClipConfig, Scenario, parse_scenario
 
 ROUNDS = 7
 
@@ -159,18 +159,13 @@ def main() -> None:
     engine_t, vmap_t, vmap_ratio = paired(engine_steps("example-norm"), vmap_steps())
     stack_t, sequential_t, stack_ratio = paired(stack_steps(), sequential_steps())
     ms = 1e3 / STEPS
-    print(
-        f"global-norm step, B=256: {global_t * ms:.3f} ms; example-norm step: {example_t * ms:.3f} ms"
-    )
-    print(
-        f"engine example-norm step: {engine_t * ms:.3f} ms; torch.func vmap(grad): {vmap_t * ms:.3f} ms"
-    )
-    print(
-        f"32-member stack, {STEPS} steps at B=32: {stack_t:.3f} s; 32 sequential runs: {sequential_t:.3f} s"
-    )
-    print(
-        f"(medians of {ROUNDS} alternating rounds, one thread, ratios are medians of per-round ratios)"
-    )
+    print(f"global-norm step, B=256: {global_t * ms:.3f} ms")
+    print(f"example-norm step, B=256: {example_t * ms:.3f} ms")
+    print(f"engine example-norm step: {engine_t * ms:.3f} ms")
+    print(f"torch.func vmap(grad) example-norm step: {vmap_t * ms:.3f} ms")
+    print(f"32-member stack, {STEPS} steps at B=32: {stack_t:.3f} s")
+    print(f"32 sequential nn.Module runs, {STEPS} steps at B=32: {sequential_t:.3f} s")
+    print(f"(medians of {ROUNDS} alternating rounds on one thread; ratios: medians per round)")
     print(f"example_over_global_step: {example_ratio:.2f} x (target <= 1.25)")
     print(f"engine_over_vmap_example_step: {vmap_ratio:.1f} x faster (target >= 5)")
     print(f"stack32_over_sequential: {stack_ratio:.1f} x faster (target >= 10)")

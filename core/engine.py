@@ -21,10 +21,10 @@ from core import clipping
 from core.data import Dataset, build_dataset
 from core.model import (
     Architecture,
+    Evaluator,
     ParamLayout,
     architecture,
     backward,
-    Evaluator,
     example_losses,
     forward,
     init_params,

@@ -191,7 +191,7 @@ class Evaluator:
         n = x.shape[0]
         self.pre = [torch.empty(members, n, width, dtype=x.dtype) for width in arch.sizes[1:]]
         self.post = [torch.empty(members, n, width, dtype=x.dtype) for width in arch.sizes[1:-1]]
-        self.ss_tot = ((y - y.mean()) ** 2).sum() if not arch.classification else None
+        self.ss_tot = ((y - y.mean()) ** 2).sum() if not arch.classification else y.new_ones(())
 
     @torch.no_grad()
     def __call__(self, params: list[torch.Tensor]) -> tuple[torch.Tensor, torch.Tensor]:
