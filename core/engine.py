@@ -25,6 +25,7 @@ from core.model import (
     ParamLayout,
     architecture,
     backward,
+    bmm,
     example_losses,
     forward,
     init_params,
@@ -399,7 +400,9 @@ class StackPass:
         infinite input cannot turn the clean part into NaN.
         """
         weighted = rows_w is not None and bias_w is not None
-        split = detail and bool(outlier.any())
+        if not detail:
+            return self._gradient_sum(inputs, dz, rows_w, bias_w), None
+        split = bool(outlier.any())
         sides = ((~outlier).unsqueeze(-1), outlier.unsqueeze(-1)) if split else (None,)
         # pieces[side][kind]: kind 0 weighted, 1 plain (only when weights exist)
         pieces: list[list[list[torch.Tensor]]] = [[[], []] for _ in sides]
@@ -412,8 +415,6 @@ class StackPass:
                 # One weight per example (example-norm, microbatch-norm): rows and bias share it.
                 shared = self.scalar_weights
                 bias.insert(0, weighted_d if shared else d * bias_w[layer].unsqueeze(-1))
-                if not detail:
-                    rows, bias = rows[:1], bias[:1]
             out = d.shape[-1]
             for side, mask in enumerate(sides):
                 d_rows = torch.cat(rows, dim=-1) if len(rows) > 1 else rows[0]  # (K, B, n out)
@@ -422,7 +423,7 @@ class StackPass:
                 if mask is not None:
                     a_side = torch.where(mask, a, 0.0)
                     d_rows, d_bias = torch.where(mask, d_rows, 0.0), torch.where(mask, d_bias, 0.0)
-                weight_sum = torch.bmm(d_rows.transpose(1, 2), a_side)  # (K, n out, in)
+                weight_sum = bmm(d_rows.transpose(1, 2), a_side)  # (K, n out, in)
                 bias_sum = d_bias.sum(dim=1)
                 for kind in range(len(rows)):
                     pieces[side][kind].append(
@@ -430,8 +431,6 @@ class StackPass:
                     )
                     pieces[side][kind].append(bias_sum[:, kind * out : (kind + 1) * out])
         flats = [[torch.cat(k, dim=1) for k in side if k] for side in pieces]
-        if not detail:
-            return flats[0][0], None
         # Without weights the weighted and plain parts are one and the same.
         clean_w, clean_u = flats[0][0], flats[0][-1]
         if split:
@@ -439,6 +438,26 @@ class StackPass:
         else:
             out_w = out_u = torch.zeros_like(clean_w)
         return clean_w + out_w if split else clean_w.clone(), [clean_w, out_w, clean_u, out_u]
+
+    def _gradient_sum(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        rows_w: list[torch.Tensor] | None,
+        bias_w: list[torch.Tensor] | None,
+    ) -> torch.Tensor:
+        """sum_i (dz_i * w_i) a_i^T per layer, written once into a flat (K, P) gradient."""
+        K = dz[0].shape[0]
+        flat = torch.empty(K, self.layout.total, dtype=self.dtype)
+        views = self.layout.views(flat)
+        for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
+            d_rows = d_bias = d
+            if rows_w is not None and bias_w is not None:
+                d_rows = d * rows_w[layer]
+                d_bias = d_rows if self.scalar_weights else d * bias_w[layer].unsqueeze(-1)
+            views[2 * layer].copy_(bmm(d_rows.transpose(1, 2), a))
+            torch.sum(d_bias, dim=1, out=views[2 * layer + 1])
+        return flat
 
     def _detail(
         self,
