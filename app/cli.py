@@ -53,6 +53,40 @@ def build_parser() -> argparse.ArgumentParser:
         help="also write trace.npz (batches, initial weights, example norms) and data.npz",
     )
 
+    sweep = commands.add_parser(
+        "sweep", help="train batch size x threshold x seed grids and find the threshold windows"
+    )
+    sweep.add_argument("preset", type=Path, help="a scenario preset (.toml)")
+    sweep.add_argument(
+        "--set",
+        dest="overrides",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override a key (repeatable)",
+    )
+    sweep.add_argument(
+        "--out",
+        type=Path,
+        default=Path("sweep-out"),
+        help="folder for sweep.csv, windows.json, profile.json (default: sweep-out)",
+    )
+    sweep.add_argument(
+        "--jobs", type=int, default=None, help="worker processes (default: the number of cores)"
+    )
+    sweep.add_argument(
+        "--resume",
+        action="store_true",
+        help="continue a stopped sweep in --out without recomputing finished points",
+    )
+    sweep.add_argument(
+        "--tolerance",
+        type=float,
+        default=None,
+        help="a threshold is in the window when its loss is within (1 + tolerance) "
+        "of the best at that batch size (default: the preset's sweep.tolerance)",
+    )
+
     check = commands.add_parser("check", help="validate presets and notebooks")
     check.add_argument("files", type=Path, nargs="+", metavar="FILE")
 
@@ -82,6 +116,10 @@ def _dispatch(argv: list[str]) -> int:
         return _default_run()
     if args.command == "run":
         return command_run(args.preset, args.overrides, args.out, args.trace)
+    if args.command == "sweep":
+        return command_sweep(
+            args.preset, args.overrides, args.out, args.jobs, args.resume, args.tolerance
+        )
     if args.command == "check":
         return command_check(args.files)
     return command_presets()
@@ -111,6 +149,90 @@ def command_run(preset: Path, overrides: list[str], out: Path | None, trace: boo
         written = write_run(result, out, trace)
         print(f"wrote {', '.join(p.name for p in written)} to {out}")
     return EXIT_OK
+
+
+def command_sweep(
+    preset: Path,
+    overrides: list[str],
+    out: Path,
+    jobs: int | None,
+    resume: bool,
+    tolerance: float | None,
+) -> int:
+    import json
+
+    from core.analysis import analyse, sentence, window_line, windows_json
+    from core.scenario import load_scenario, parse_override
+    from core.sweep import plan, run_sweep
+
+    if jobs is not None and jobs < 1:
+        raise GradfenceInputError(f"--jobs = {jobs} must be at least 1.")
+    scenario = load_scenario(preset)
+    if overrides:
+        scenario = scenario.with_overrides(dict(parse_override(o) for o in overrides))
+    if tolerance is None:
+        tolerance = scenario.sweep.tolerance
+    elif not tolerance > 0:
+        raise GradfenceInputError(f"--tolerance = {tolerance:g} must be greater than 0.")
+    chunks = plan(scenario)
+    points = sum(len(c.points) for c in chunks)
+    print(
+        f"{scenario.name}: {points} points in {len(chunks)} stacks, batch sizes "
+        f"{', '.join(map(str, scenario.sweep.batch_sizes))}",
+        file=sys.stderr,
+    )
+    progress = Progress(len(chunks), sys.stderr, label="stacks")
+    try:
+        rows = run_sweep(scenario, out, jobs, resume, lambda p: progress.update(p.done))
+    except KeyboardInterrupt:
+        progress.close()
+        print(
+            f"stopped; finished stacks are in {out / 'sweep.csv'}: continue with --resume.",
+            file=sys.stderr,
+        )
+        return EXIT_INTERNAL
+    progress.close()
+    results = analyse(rows, tolerance)
+    from core.fileio import write_text_atomic
+    from core.profile import norm_profile, suggest_thresholds
+
+    write_text_atomic(
+        out / "windows.json", json.dumps(windows_json(results, tolerance), indent=2) + "\n"
+    )
+    profile = norm_profile(scenario)
+    suggestions = suggest_thresholds(scenario)
+    profile_json = profile.as_json()
+    profile_json["suggestions"] = [s.__dict__ for s in suggestions]
+    write_text_atomic(out / "profile.json", json.dumps(profile_json, indent=2) + "\n")
+    for w in results.values():
+        print(sentence(w))
+        print(window_line(w))
+    print(profile_sentence(profile))
+    for s in suggestions:
+        where = f" at batch size {s.batch_size}" if s.batch_size else ""
+        print(
+            f"suggested {s.label} threshold: {s.threshold:.3g}, the {s.percentile:g}th percentile "
+            f"of unclipped warm-up norms{where} (clips {s.clip_rate:.0%} of them)."
+        )
+    print(f"wrote sweep.csv, windows.json and profile.json to {out}")
+    return EXIT_OK
+
+
+def profile_sentence(profile: object) -> str:
+    from core.profile import NormProfile
+
+    assert isinstance(profile, NormProfile)
+    noise = (
+        f"at step {profile.checkpoint_step}, |G|^2 = {profile.grad_sq:.3g} and "
+        f"tr(Sigma) = {profile.trace:.3g} (noise scale B_simple = {profile.noise_scale:.3g})"
+    )
+    hiding = profile.hiding_batch
+    if hiding is None:
+        return f"norm profile: {noise}."
+    return (
+        f"norm profile: {noise}; one outlier of gradient norm {profile.outlier_norm:.3g} "
+        f"hides in the gradient noise once the batch size passes about {hiding:.0f}."
+    )
 
 
 def command_check(files: list[Path]) -> int:

@@ -247,6 +247,14 @@ class SweepConfig:
         lo=0.0,
         lo_open=True,
     )
+    tolerance: float = option(
+        1.0,
+        "A threshold is in a batch size's window when its final loss is within a factor "
+        "(1 + tolerance) of the best there.",
+        lo=0.0,
+        lo_open=True,
+        hi=100.0,
+    )
 
 
 def _default_clips() -> tuple[ClipConfig, ...]:
