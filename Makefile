@@ -26,6 +26,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python bench/engine.py
+	$(BIN)/python bench/sweep.py
 
 clean:
 	rm -rf $(VENV) .mypy_cache .pytest_cache .ruff_cache
