@@ -16,7 +16,6 @@ import numpy as np
 from core.errors import GradfenceInputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
-DEFAULT_PRESET = "outliers-meet-batch-size.toml"
 
 
 class InputArgumentParser(argparse.ArgumentParser):
@@ -87,6 +86,19 @@ def build_parser() -> argparse.ArgumentParser:
         "of the best at that batch size (default: the preset's sweep.tolerance)",
     )
 
+    open_cmd = commands.add_parser("open", help="open a notebook in the desktop app")
+    open_cmd.add_argument("notebook", type=Path, help="a .notebook.toml file")
+
+    shot = commands.add_parser("shot", help="run a notebook offscreen and save the window as PNG")
+    shot.add_argument("notebook", type=Path, help="a .notebook.toml file")
+    shot.add_argument("--out", type=Path, required=True, help="the PNG to write")
+    shot.add_argument(
+        "--seconds",
+        type=float,
+        default=60.0,
+        help="run the entries this long at most (default 60; they may finish sooner)",
+    )
+
     check = commands.add_parser("check", help="validate presets and notebooks")
     check.add_argument("files", type=Path, nargs="+", metavar="FILE")
 
@@ -113,7 +125,19 @@ def main(argv: Sequence[str] | None = None) -> int:
 def _dispatch(argv: list[str]) -> int:
     args = build_parser().parse_args(argv)
     if args.command is None:
-        return _default_run()
+        from app.desktop import launch
+
+        return launch()
+    if args.command == "open":
+        from app.desktop import launch
+
+        return launch(args.notebook)
+    if args.command == "shot":
+        from app.desktop import shot
+
+        if not args.seconds > 0:
+            raise GradfenceInputError(f"--seconds = {args.seconds:g} must be greater than 0.")
+        return shot(args.notebook, args.out, args.seconds)
     if args.command == "run":
         return command_run(args.preset, args.overrides, args.out, args.trace)
     if args.command == "sweep":
@@ -123,13 +147,6 @@ def _dispatch(argv: list[str]) -> int:
     if args.command == "check":
         return command_check(args.files)
     return command_presets()
-
-
-def _default_run() -> int:
-    from core.presets import shipped_dir
-
-    print("Running the default preset headless (the desktop app is not part of this build).")
-    return command_run(shipped_dir() / DEFAULT_PRESET, [], None, False)
 
 
 def command_run(preset: Path, overrides: list[str], out: Path | None, trace: bool) -> int:
@@ -236,11 +253,16 @@ def profile_sentence(profile: object) -> str:
 
 
 def command_check(files: list[Path]) -> int:
+    from core.notebook import is_notebook, load_notebook
     from core.scenario import load_scenario
 
     failures = 0
     for path in files:
         try:
+            if is_notebook(path):
+                notebook = load_notebook(path)
+                print(f"ok: {path} (notebook {notebook.title!r}, {len(notebook.entries)} entries)")
+                continue
             scenario = load_scenario(path)
         except GradfenceInputError as exc:
             failures += 1

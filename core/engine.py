@@ -103,6 +103,8 @@ class StepRecord:
     step: int
     values: dict[str, np.ndarray]
     newly_diverged: tuple[int, ...] = ()
+    example_norms: np.ndarray | None = None  # (K, B) pre-clip norms, when the engine keeps them
+    outlier: np.ndarray | None = None  # (K, B) bool, beside example_norms
 
 
 @dataclass
@@ -498,6 +500,7 @@ class Engine:
         dataset: Dataset | None = None,
         dtype: torch.dtype = torch.float32,
         trace: bool = False,
+        keep_norms: bool = False,
     ) -> None:
         if not members:
             raise ValueError("an engine needs at least one member")
@@ -544,6 +547,7 @@ class Engine:
         self.grad_pass = StackPass(
             self.arch, members, train.loss_reduction, scenario.model.exclude_head, dtype
         )
+        self.keep_norms = keep_norms  # logged records carry the step's per-example norms
         self.grad_pass.want_norms = trace
         self.grad_pass.data_nonfinite = not (
             bool(torch.isfinite(self.x_train).all()) and bool(torch.isfinite(self.y_train).all())
@@ -582,6 +586,7 @@ class Engine:
         else:
             x, y, outlier = x[self.member_slot], y[self.member_slot], outlier[self.member_slot]
         result = self.grad_pass.run(self.params, x, y, outlier, logged)
+        self._last_outlier = outlier
         if self.example_norms is not None and result.norms is not None:
             self.example_norms[:, step - 1] = result.norms.double().numpy()
 
@@ -682,7 +687,12 @@ class Engine:
             out[name] = array
         out["diverged"] = dead.astype(np.float64)
         ordered = {name: out[name] for name in metric_names(self.arch.classification)}
-        return StepRecord(step, ordered, tuple(torch.nonzero(newly).flatten().tolist()))
+        newly_list = tuple(torch.nonzero(newly).flatten().tolist())
+        if not self.keep_norms:
+            return StepRecord(step, ordered, newly_list)
+        return StepRecord(
+            step, ordered, newly_list, norms.numpy().copy(), self._last_outlier.numpy().copy()
+        )
 
     def _noise_scale(self, detail: dict[str, torch.Tensor]) -> torch.Tensor:
         """B_simple = tr(Sigma) / |G|^2 from the clean examples of logged batches.

@@ -1,0 +1,192 @@
+"""The desktop window, offscreen: entries, live runs in workers, scrubbing, editing."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pytest
+from pytestqt.qtbot import QtBot
+
+from app.desktop import demo_path
+from app.main_window import MainWindow
+from app.run_entry_view import RunEntryView
+from app.workers import Task
+from core.fan import fan_factors, member_for
+from core.notebook import load_notebook
+from core.run_model import DONE, FAILED, IDLE, RUNNING, STOPPED
+
+NOTEBOOK = """\
+schema = 1
+title = "Test notebook"
+
+[[entry]]
+kind = "note"
+title = "A note"
+text = "Some *Markdown*."
+
+[[entry]]
+kind = "run"
+title = "Quick blobs"
+[entry.scenario]
+name = "Quick blobs"
+[entry.scenario.data]
+task = "blobs"
+n_train = 600
+n_val = 200
+noise = 1.0
+[entry.scenario.outliers]
+kind = "label-flip"
+rate = 0.3
+[entry.scenario.model]
+hidden = [16]
+[entry.scenario.train]
+steps = 80
+batch_size = 16
+eval_every = 5
+[[entry.scenario.clip]]
+method = "none"
+[[entry.scenario.clip]]
+method = "global-norm"
+threshold = 0.5
+[[entry.scenario.clip]]
+method = "example-norm"
+threshold = 0.5
+"""
+
+
+@pytest.fixture
+def window(qtbot: QtBot, tmp_path: Path) -> Iterator[MainWindow]:
+    path = tmp_path / "test.notebook.toml"
+    path.write_text(NOTEBOOK)
+    win = MainWindow(load_notebook(path))
+    qtbot.addWidget(win)
+    win.show()
+    yield win
+    win.close()  # ends the worker processes; the leak fixture checks that they are gone
+
+
+def trained(qtbot: QtBot, win: MainWindow) -> RunEntryView:
+    view = win.run_views[0]
+    win.run_view(view)
+    qtbot.waitUntil(lambda: view.model.status == DONE, timeout=90_000)
+    win._on_redraw_tick()
+    return view
+
+
+def curve_y(view: RunEntryView, label: str, key: str = "loss") -> np.ndarray:
+    _, y = view.curves[(label, key)].getOriginalDataset()
+    return np.asarray(y)
+
+
+def test_the_demo_notebook_opens_without_training(qtbot: QtBot) -> None:
+    win = MainWindow(load_notebook(demo_path()))
+    qtbot.addWidget(win)
+    assert win.outline.count() == 3
+    assert len(win.run_views) == 2
+    assert all(v.model.status == IDLE for v in win.run_views)
+    assert not win.pool.started  # nothing trains, and no worker starts, until asked
+    win.close()
+
+
+def test_a_run_entry_trains_in_workers_and_its_plots_fill(qtbot: QtBot, window: MainWindow) -> None:
+    view = trained(qtbot, window)
+    for batch, stack in view.model.stacks.items():
+        assert stack.filled == len(stack.steps) == 16, batch
+        assert np.isfinite(stack.values["val_loss"]).all()
+    assert len(curve_y(view, "global-norm")) == 16
+    assert "finished" in view.status_label.text()
+
+
+def test_stopping_an_entry_ends_its_training(qtbot: QtBot, window: MainWindow) -> None:
+    view = window.run_views[0]
+    view.model.scenario = view.model.scenario.with_overrides({"train.steps": 4000})
+    window.run_view(view)
+    qtbot.waitUntil(lambda: any(s.filled > 0 for s in view.model.stacks.values()), timeout=60_000)
+    window.stop_view(view)
+    assert view.model.status == STOPPED
+    qtbot.waitUntil(lambda: not window.pool.busy, timeout=10_000)
+    qtbot.wait(300)
+    counts = [s.filled for s in view.model.stacks.values()]
+    qtbot.wait(500)
+    assert [s.filled for s in view.model.stacks.values()] == counts  # nothing more arrives
+    assert max(counts) < 800
+
+
+def test_the_threshold_slider_switches_the_plotted_member(qtbot: QtBot, window: MainWindow) -> None:
+    view = trained(qtbot, window)
+    stack = view.model.stacks[view.batch_size]
+    for position in (0, 5, len(fan_factors()) - 1):
+        view.slider.setValue(position)
+        member = member_for(stack.members, "global-norm", float(fan_factors()[position]))
+        np.testing.assert_array_equal(
+            curve_y(view, "global-norm"), stack.values["val_loss"][:, member]
+        )
+        assert stack.members[member].threshold == pytest.approx(0.5 * fan_factors()[position])
+    assert view.factor_box.value() == pytest.approx(fan_factors()[-1], rel=1e-3)
+    low, high = view.model.stacks[view.batch_size].values["clipped_share"][:, [1, 17]].mean(axis=0)
+    assert low > high  # the smallest threshold clips more than the largest
+
+
+def test_the_batch_size_selector_switches_the_plotted_stack(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    view = trained(qtbot, window)
+    sizes = view.model.batch_sizes
+    assert len(sizes) == 4
+    for batch in sizes:
+        view.set_batch_size(batch)
+        stack = view.model.stacks[batch]
+        member = member_for(stack.members, "example-norm", view.factor)
+        np.testing.assert_array_equal(
+            curve_y(view, "example-norm"), stack.values["val_loss"][:, member]
+        )
+        assert f"batch size {batch}" in view.readout.text()
+
+
+def test_invalid_toml_shows_the_error_and_keeps_the_last_valid_scenario(window: MainWindow) -> None:
+    editor = window.inspector.widget(1)
+    before = window.run_views[0].model.scenario
+    editor.editor.setPlainText("[train]\nsteps = -3\n")
+    assert not editor.validate()
+    assert "train.steps" in editor.status.text() and "last valid" in editor.status.text()
+    assert window.run_views[0].model.scenario == before
+    editor.editor.setPlainText("[train]\nsteps = 30\n")
+    assert editor.validate()
+    assert window.run_views[0].model.scenario.train.steps == 30
+
+
+def test_a_form_edit_changes_the_scenario_and_marks_results_stale(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    view = trained(qtbot, window)
+    form = window.inspector.widget(0)
+    lr = form.widgets["train.lr"]
+    lr.setText("0.05")
+    lr.editingFinished.emit()
+    assert view.model.scenario.train.lr == 0.05
+    assert view.model.stale and "stale" in view.status_label.text()
+    noise = form.widgets["data.noise"]
+    noise.setText("-1")  # out of range: the validator's sentence shows, nothing changes
+    noise.editingFinished.emit()
+    assert "data.noise = -1 is out of range" in form.error_label.text()
+    assert view.model.scenario.data.noise == 1.0
+
+
+def test_a_failing_run_shows_in_its_entry_and_the_app_lives_on(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    view = window.run_views[0]
+    view.model.begin(run_id=999)
+    window.pool.submit(
+        Task(999, 16, "not = [valid", []),
+        lambda kind, rid, batch, payload: (
+            view.model.fail(rid, str(payload)) if kind == "error" else None
+        ),
+    )
+    qtbot.waitUntil(lambda: view.model.status == FAILED, timeout=60_000)
+    assert "failed" in view.status_label.text()
+    view.model.reset()
+    trained(qtbot, window)  # the same workers still train
+    assert view.model.status == DONE and view.model.status != RUNNING
