@@ -180,8 +180,9 @@ class MainWindow(QtWidgets.QMainWindow):
             elif kind == "error":
                 model.fail(rid, str(payload))
 
-        # Largest batch first: it takes longest, so it should start first.
-        for batch, members in sorted(model.begin(run_id).items(), key=lambda kv: -kv[0]):
+        # Smallest batch first: those finish in seconds, so the curves a person looks at first
+        # (the preset's batch size and below) fill while the large stacks still train.
+        for batch, members in sorted(model.begin(run_id).items()):
             self.pool.submit(Task(run_id, batch, text, members), handle)
 
     def stop_view(self, view: RunEntryView) -> None:

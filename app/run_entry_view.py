@@ -12,7 +12,7 @@ from app.colors import CLEAN_COLOR, LINE_STYLES, OUTLIER_COLOR, method_color
 from core.fan import FAN_SIZE, fan_factors, member_for
 from core.run_model import DONE, FAILED, RUNNING, STOPPED, RunEntryModel, StackData, regime
 
-pg.setConfigOptions(background="w", foreground="k", antialias=True)
+pg.setConfigOptions(background="w", foreground="k", antialias=False)
 
 PLOTS = (
     ("loss", "clean validation loss", "loss"),
@@ -91,7 +91,7 @@ class RunEntryView(QtWidgets.QFrame):
             plot = self.canvas.addPlot(row=i // 2, col=i % 2, title=title)
             plot.setLabel("bottom", "step")
             plot.setLabel("left", unit)
-            plot.showGrid(x=True, y=True, alpha=0.2)
+            plot.showGrid(x=False, y=False)
             plot.setClipToView(True)
             plot.setDownsampling(mode="peak", auto=True)
             plot.getAxis("left").enableAutoSIPrefix(False)

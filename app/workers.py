@@ -2,13 +2,14 @@
 
 Tiny torch ops hold the GIL most of the time, so a training thread would starve the event loop.
 Each worker is a spawned process with one torch thread; it trains one stack at a time and sends
-its records in batches every ~75 ms. A timer on the GUI thread drains the queue at about 30 Hz.
+its records in batches every ~30 ms. A timer on the GUI thread drains the queue at about 30 Hz.
 Stopping a run is a message; workers are started once and reused.
 """
 
 from __future__ import annotations
 
 import multiprocessing
+import os
 import queue
 import time
 import traceback
@@ -18,7 +19,7 @@ from typing import Any
 
 from PySide6 import QtCore
 
-SEND_EVERY = 0.075  # seconds between record batches from a worker
+SEND_EVERY = 0.03  # seconds between record batches from a worker: about the drain rate
 DRAIN_MS = 33  # GUI drain period: about 30 Hz
 
 
@@ -100,9 +101,10 @@ class WorkerPool(QtCore.QObject):
 
     state_changed = QtCore.Signal(str)
 
-    def __init__(self, size: int = 2, parent: QtCore.QObject | None = None) -> None:
+    def __init__(self, size: int | None = None, parent: QtCore.QObject | None = None) -> None:
         super().__init__(parent)
-        self.size = size
+        # One core stays with the GUI: a worker per remaining core (at least one).
+        self.size = size or max(1, (os.cpu_count() or 2) - 1)
         self._context = multiprocessing.get_context("spawn")
         self._outbox: Any = self._context.Queue()
         self._inboxes: list[Any] = []
