@@ -27,6 +27,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/engine.py
 	$(BIN)/python bench/sweep.py
+	$(BIN)/python bench/ui.py
 
 clean:
 	rm -rf $(VENV) .mypy_cache .pytest_cache .ruff_cache

@@ -95,7 +95,7 @@ class RunEntryView(QtWidgets.QFrame):
             plot.setClipToView(True)
             plot.setDownsampling(mode="peak", auto=True)
             plot.getAxis("left").enableAutoSIPrefix(False)
-            plot.addLegend(offset=(-10, 10), labelTextSize="8pt")
+            plot.addLegend(offset=(-10, 10), labelTextSize="8pt", brush=(255, 255, 255, 210))
             self.plots[key] = plot
         for col in range(2):
             self.canvas.ci.layout.setColumnStretchFactor(col, 1)
@@ -106,7 +106,8 @@ class RunEntryView(QtWidgets.QFrame):
         )
         hist.setLabel("bottom", "per-example gradient norm (log10)")
         hist.setLabel("left", "examples")
-        hist.addLegend(offset=(10, 10), labelTextSize="8pt")
+        hist.getAxis("left").enableAutoSIPrefix(False)
+        hist.addLegend(offset=(10, 10), labelTextSize="8pt", brush=(255, 255, 255, 210))
         self.plots["hist"] = hist
         self.hist_clean = hist.plot(
             [0, 1],
@@ -350,9 +351,10 @@ class RunEntryView(QtWidgets.QFrame):
 
     def _draw_histogram(self, stack: StackData | None) -> None:
         labels = [(label, method) for label, method, _ in self._labels() if method != "none"]
-        if stack is None or stack.example_norms is None or stack.outlier is None or not labels:
-            self.hist_clean.setData([0, 1], [0])
-            self.hist_outlier.setData([0, 1], [0])
+        empty = stack is None or stack.example_norms is None or stack.outlier is None or not labels
+        for item in (self.hist_clean, self.hist_outlier, self.hist_line):
+            item.setVisible(not empty)
+        if empty or stack is None or stack.example_norms is None or stack.outlier is None:
             return
         label, method = next(((lab, m) for lab, m in labels if m == "example-norm"), labels[0])
         i = member_for(stack.members, label, self.factor)
