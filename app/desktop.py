@@ -7,6 +7,7 @@ import sys
 import time
 from pathlib import Path
 
+from core.errors import GradfenceInputError
 from core.notebook import load_notebook
 from core.presets import shipped_dir
 
@@ -27,6 +28,16 @@ def _application() -> object:
 def launch(path: Path | None = None) -> int:
     """Open the window on a notebook (the demo when none is given) and run the event loop."""
     notebook = load_notebook(path or demo_path())  # bad input fails before any window opens
+    headless = sys.platform.startswith("linux") and not (
+        os.environ.get("DISPLAY")
+        or os.environ.get("WAYLAND_DISPLAY")
+        or os.environ.get("QT_QPA_PLATFORM")
+    )
+    if headless:
+        raise GradfenceInputError(
+            "no display to open a window on; use `gradfence shot NOTEBOOK --out FILE.png` to run "
+            "a notebook without one, or set QT_QPA_PLATFORM=offscreen."
+        )
     app = _application()
     from app.main_window import MainWindow
 
