@@ -25,6 +25,17 @@ class InputArgumentParser(argparse.ArgumentParser):
         raise GradfenceInputError(f"gradfence: {message}; see `gradfence --help`.")
 
 
+def add_overrides(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--set",
+        dest="overrides",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override a key, e.g. --set train.batch_size=128 (repeatable)",
+    )
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = InputArgumentParser(
         prog="gradfence",
@@ -37,14 +48,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     run = commands.add_parser("run", help="train a preset's members and report the results")
     run.add_argument("preset", type=Path, help="a scenario preset (.toml)")
-    run.add_argument(
-        "--set",
-        dest="overrides",
-        action="append",
-        default=[],
-        metavar="KEY=VALUE",
-        help="override a key, e.g. --set train.batch_size=128 (repeatable)",
-    )
+    add_overrides(run)
     run.add_argument("--out", type=Path, help="folder for scenario.toml, metrics.csv, summary.json")
     run.add_argument(
         "--trace",
@@ -56,14 +60,7 @@ def build_parser() -> argparse.ArgumentParser:
         "sweep", help="train batch size x threshold x seed grids and find the threshold windows"
     )
     sweep.add_argument("preset", type=Path, help="a scenario preset (.toml)")
-    sweep.add_argument(
-        "--set",
-        dest="overrides",
-        action="append",
-        default=[],
-        metavar="KEY=VALUE",
-        help="override a key (repeatable)",
-    )
+    add_overrides(sweep)
     sweep.add_argument(
         "--out",
         type=Path,

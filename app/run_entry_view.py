@@ -109,23 +109,9 @@ class RunEntryView(QtWidgets.QFrame):
         hist.getAxis("left").enableAutoSIPrefix(False)
         hist.addLegend(offset=(10, 10), labelTextSize="8pt", brush=(255, 255, 255, 210))
         self.plots["hist"] = hist
-        self.hist_clean = hist.plot(
-            [0, 1],
-            [0],
-            stepMode="center",
-            fillLevel=0,
-            brush=CLEAN_COLOR + "99",
-            pen=CLEAN_COLOR,
-            name="clean",
-        )
-        self.hist_outlier = hist.plot(
-            [0, 1],
-            [0],
-            stepMode="center",
-            fillLevel=0,
-            brush=OUTLIER_COLOR + "99",
-            pen=OUTLIER_COLOR,
-            name="outliers",
+        self.hist_clean, self.hist_outlier = (
+            hist.plot([0, 1], [0], stepMode="center", fillLevel=0, brush=c + "99", pen=c, name=n)
+            for c, n in ((CLEAN_COLOR, "clean"), (OUTLIER_COLOR, "outliers"))
         )
         self.hist_line = pg.InfiniteLine(
             angle=90, pen=pg.mkPen("#000000", width=2, style=QtCore.Qt.PenStyle.DashLine)
