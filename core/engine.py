@@ -126,6 +126,7 @@ class _Group:
 
     def __post_init__(self) -> None:
         self.adaptive = not all(isinstance(r, FixedRule) for r in self.rules)
+        self.unwatched = torch.full_like(self.thresholds, math.nan)  # when nothing watches
         self.whole = self.positions == list(range(self.stack_size))
 
     def take(self, tensor: torch.Tensor) -> torch.Tensor:
@@ -353,7 +354,7 @@ class StackPass:
         layers = self.arch.layers
         # The watched quantity feeds adaptive rules and spike skipping only; skip it otherwise.
         watch = g.adaptive or self.any_skip
-        nothing = torch.full((len(g.positions),), math.nan, dtype=self.dtype)
+        nothing = g.unwatched
         if g.method == "example-norm":
             seen = norms.amax(dim=1) if watch else nothing
             level = g.levels(seen)

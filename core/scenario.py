@@ -81,7 +81,9 @@ METHOD_HELP = {
     ),
     "example-norm": (
         "Clips each example's whole gradient, then averages: "
-        "g <- mean_i g_i * min(1, t / |g_i|); optional Gaussian noise as in DP-SGD."
+        "g <- mean_i g_i * min(1, t / |g_i|); optional Gaussian noise as in DP-SGD (a "
+        "simulation for studying clipping: not an audited privacy implementation, no privacy "
+        "guarantee for real data)."
     ),
     "example-agc": "Applies the AGC rule unit by unit to each example's gradient, then averages.",
     "microbatch-norm": (

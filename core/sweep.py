@@ -182,8 +182,8 @@ def run_sweep(
     # A chunk only partly on file (not possible with whole-chunk appends) would be redone whole.
     keep = {p.key(scenario) for c in chunks if c not in todo for p in c.points}
     done_rows = [r for r in done_rows if _row_key(r) in keep]
-    if not table_path.exists() or not done_rows:
-        write_text_atomic(table_path, _csv_text(done_rows, header=True))
+    # Start from a clean file: finished chunks only, no torn line for new rows to join.
+    write_text_atomic(table_path, _csv_text(done_rows, header=True))
     progress = SweepProgress(len(chunks) - len(todo), len(chunks), 0)
     if on_progress:
         on_progress(replace(progress))
@@ -290,11 +290,16 @@ def _cell(value: Any) -> str:
 
 
 def read_table(path: Path) -> list[dict[str, Any]]:
-    """sweep.csv back into typed rows."""
-    with path.open(encoding="utf-8") as f:
+    """sweep.csv back into typed rows; a last line cut short by a kill is dropped."""
+    text = path.read_text(encoding="utf-8")
+    if text and not text.endswith("\n"):
+        text = text[: text.rfind("\n") + 1]  # the torn tail of an interrupted append
+    with io.StringIO(text) as f:
         reader = csv.DictReader(f)
         rows = []
         for raw in reader:
+            if None in raw.values() or len(raw) != len(COLUMNS):
+                continue  # an incomplete row: its chunk is recomputed
             row: dict[str, Any] = {}
             for column in COLUMNS:
                 value = raw[column]

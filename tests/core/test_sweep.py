@@ -128,6 +128,45 @@ def test_a_sweep_stopped_half_way_resumes_to_the_same_table(tmp_path: Path) -> N
     assert table.read_bytes() == (tmp_path / "whole" / "sweep.csv").read_bytes()
 
 
+def test_a_sweep_killed_mid_write_resumes_to_the_same_table(tmp_path: Path) -> None:
+    preset = tmp_path / "small.toml"
+    preset.write_text(SMALL)
+    scenario = load_scenario(preset)
+    killed = tmp_path / "killed"
+    env = {**os.environ, "PYTHONPATH": str(REPO)}
+    process = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "app.cli",
+            "sweep",
+            str(preset),
+            "--out",
+            str(killed),
+            "--jobs",
+            "1",
+        ],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    table = killed / "sweep.csv"
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline:
+        if table.exists() and len(table.read_text().splitlines()) > 1:
+            break
+        time.sleep(0.05)
+    process.kill()  # SIGKILL: no handler runs, nothing is tidied up
+    process.wait(timeout=30)
+    with table.open("a") as f:  # as if the kill had landed in the middle of an append
+        f.write("global-norm,global-norm,0.1,32,0,0.52")
+    progress: list[SweepProgress] = []
+    run_sweep(scenario, killed, jobs=1, resume=True, on_progress=progress.append)
+    assert progress[-1].computed == progress[-1].total - progress[0].done
+    run_sweep(scenario, tmp_path / "whole", jobs=1)
+    assert table.read_bytes() == (tmp_path / "whole" / "sweep.csv").read_bytes()
+
+
 def test_resuming_with_a_changed_scenario_is_refused(tmp_path: Path) -> None:
     from core.errors import GradfenceInputError
 
