@@ -26,7 +26,8 @@ class ExampleWeights:
 
 def example_sq_norms(inputs: list[torch.Tensor], dz: list[torch.Tensor]) -> torch.Tensor:
     """Per-example squared gradient norm (K, B): sum_l |dz_l|^2 (|a_l|^2 + 1)."""
-    total = torch.linalg.vecdot(dz[0], dz[0]) * (torch.linalg.vecdot(inputs[0], inputs[0]) + 1.0)
+    first = torch.linalg.vecdot(inputs[0], inputs[0]) + 1.0
+    total: torch.Tensor = torch.linalg.vecdot(dz[0], dz[0]) * first
     for a, d in zip(inputs[1:], dz[1:], strict=True):
         total.addcmul_(torch.linalg.vecdot(d, d), torch.linalg.vecdot(a, a) + 1.0)
     return total
