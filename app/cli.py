@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import math
 import sys
+import textwrap
 import time
 import traceback
 from collections.abc import Sequence
@@ -279,7 +280,10 @@ def command_presets() -> int:
             continue
         print(f"{info.path.name}  [{origin}]  {info.name}")
         if info.scenario.notes:
-            print(f"    {info.scenario.notes.strip().splitlines()[0]}")
+            lines = textwrap.wrap(
+                info.scenario.notes, 96, max_lines=2, placeholder=" ...", break_on_hyphens=False
+            )
+            print("\n".join(f"    {line}" for line in lines))
     return EXIT_OK
 
 
