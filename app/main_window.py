@@ -12,12 +12,14 @@ from PySide6 import QtCore, QtGui, QtWidgets
 from app.note_view import NoteView
 from app.run_entry_view import RunEntryView
 from app.scenario_form import ScenarioForm
+from app.sweep_entry_view import SweepEntryView
 from app.toml_editor import TomlEditor
 from app.workers import Task, WorkerPool
 from core.errors import GradfenceInputError
 from core.notebook import Notebook, load_notebook
 from core.run_model import RUNNING, RunEntryModel
 from core.scenario import dumps_scenario
+from core.sweep_model import SweepEntryModel
 
 REDRAW_MS = 33  # plots are redrawn at most about 30 times a second
 
@@ -29,8 +31,9 @@ class MainWindow(QtWidgets.QMainWindow):
         self.pool.state_changed.connect(self._on_pool_state_changed)
         self._run_ids = itertools.count(1)
         self.run_views: list[RunEntryView] = []
+        self.sweep_views: list[SweepEntryView] = []
         self.entry_widgets: list[QtWidgets.QWidget] = []
-        self.selected_view: RunEntryView | None = None
+        self.selected_view: RunEntryView | SweepEntryView | None = None
         self.resize(1500, 1000)
 
         self.column = QtWidgets.QWidget()
@@ -119,7 +122,7 @@ class MainWindow(QtWidgets.QMainWindow):
         for old in self.entry_widgets:
             self.column_layout.removeWidget(old)
             old.deleteLater()
-        self.entry_widgets, self.run_views = [], []
+        self.entry_widgets, self.run_views, self.sweep_views = [], [], []
         self.outline.clear()
         self.notebook = notebook
         self.setWindowTitle(f"Gradfence - {notebook.title}")
@@ -134,22 +137,26 @@ class MainWindow(QtWidgets.QMainWindow):
                 view.selected.connect(self.select_view)
                 self.run_views.append(view)
                 widget = view
+            elif entry.scenario is not None:
+                sweep = SweepEntryView(SweepEntryModel(entry.title, entry.scenario))
+                sweep.run_requested.connect(self.run_sweep)
+                sweep.stop_requested.connect(self.stop_sweep)
+                sweep.selected.connect(self.select_view)
+                self.sweep_views.append(sweep)
+                widget = sweep
             else:
-                widget = NoteView(
-                    entry.title,
-                    "Sweep entries open in the app in a later version; "
-                    "run this one with `gradfence sweep`.",
-                )
+                continue
             self.column_layout.addWidget(widget)
             self.entry_widgets.append(widget)
             self.outline.addItem(f"{entry.kind}: {entry.title}")
         self.column_layout.addStretch(1)
-        if self.run_views:
-            self.select_view(self.run_views[0])
+        first: list[RunEntryView | SweepEntryView] = [*self.run_views, *self.sweep_views]
+        if first:
+            self.select_view(first[0])
 
     # -- selection and inspector -------------------------------------------------------------
 
-    def select_view(self, view: RunEntryView) -> None:
+    def select_view(self, view: RunEntryView | SweepEntryView) -> None:
         self.selected_view = view
         self.inspector.clear()
         self.inspector.addTab(ScenarioForm(view.model), "Form")
@@ -160,7 +167,7 @@ class MainWindow(QtWidgets.QMainWindow):
         if 0 <= row < len(self.entry_widgets):
             widget = self.entry_widgets[row]
             self.scroll_area.ensureWidgetVisible(widget)
-            if isinstance(widget, RunEntryView):
+            if isinstance(widget, RunEntryView | SweepEntryView):
                 self.select_view(widget)
 
     # -- running -----------------------------------------------------------------------------
@@ -185,36 +192,66 @@ class MainWindow(QtWidgets.QMainWindow):
         for batch, members in sorted(model.begin(run_id).items()):
             self.pool.submit(Task(run_id, batch, text, members), handle)
 
+    def run_sweep(self, view: SweepEntryView) -> None:
+        model = view.model
+        if model.status == RUNNING:
+            return
+        run_id = next(self._run_ids)
+        text = dumps_scenario(model.scenario)
+
+        def handle(kind: str, rid: int, batch: int, payload: Any) -> None:
+            if kind == "rows":
+                model.add_rows(rid, payload)
+            elif kind == "error":
+                model.fail(rid, str(payload))
+
+        for chunk in model.begin(run_id):
+            self.pool.submit(Task(run_id, chunk.batch_size, text, [], chunk=chunk), handle)
+
+    def stop_sweep(self, view: SweepEntryView) -> None:
+        if view.model.status == RUNNING:
+            self.pool.stop(view.model.run_id)
+            view.model.cancel()
+
     def stop_view(self, view: RunEntryView) -> None:
         if view.model.status == RUNNING:
             self.pool.stop(view.model.run_id)
             view.model.stop()
 
     def run_selected(self) -> None:
-        if self.selected_view is not None:
+        if isinstance(self.selected_view, RunEntryView):
             self.run_view(self.selected_view)
+        elif isinstance(self.selected_view, SweepEntryView):
+            self.run_sweep(self.selected_view)
 
     def run_all(self) -> None:
         for view in self.run_views:
             self.run_view(view)
+        for sweep in self.sweep_views:
+            self.run_sweep(sweep)
 
     def stop_all(self) -> None:
         for view in self.run_views:
             self.stop_view(view)
+        for sweep in getattr(self, "sweep_views", []):
+            self.stop_sweep(sweep)
 
     def reset_selected(self) -> None:
-        if self.selected_view is not None:
+        if isinstance(self.selected_view, RunEntryView):
             self.stop_view(self.selected_view)
             self.selected_view.model.reset()
 
     def all_finished(self) -> bool:
-        return all(v.model.status != RUNNING for v in self.run_views)
+        views: list[RunEntryView | SweepEntryView] = [*self.run_views, *self.sweep_views]
+        return all(v.model.status != RUNNING for v in views)
 
     # -- timers, files, closing --------------------------------------------------------------
 
     def _on_redraw_tick(self) -> None:
         for view in self.run_views:
             view.refresh_if_dirty()
+        for sweep in self.sweep_views:
+            sweep.refresh_if_dirty()
 
     def _on_speed_tick(self) -> None:
         now = time.monotonic()

@@ -15,7 +15,7 @@ from PySide6 import QtWidgets
 
 from core.errors import GradfenceInputError
 from core.fields import FieldInfo, describe_range, field_info
-from core.run_model import RunEntryModel
+from core.run_model import ScenarioHolder
 from core.scenario import METHOD_HELP, ClipConfig, Scenario
 
 TABLES = ("data", "outliers", "model", "train", "sweep")
@@ -23,7 +23,7 @@ INT_LIMIT = 2**31 - 1
 
 
 class ScenarioForm(QtWidgets.QScrollArea):
-    def __init__(self, model: RunEntryModel, parent: QtWidgets.QWidget | None = None) -> None:
+    def __init__(self, model: ScenarioHolder, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
         self.model = model
         self.setWidgetResizable(True)

@@ -9,14 +9,14 @@ from __future__ import annotations
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from core.errors import GradfenceInputError
-from core.run_model import RunEntryModel
+from core.run_model import ScenarioHolder
 from core.scenario import dumps_scenario, loads_scenario
 
 DEBOUNCE_MS = 300
 
 
 class TomlEditor(QtWidgets.QWidget):
-    def __init__(self, model: RunEntryModel, parent: QtWidgets.QWidget | None = None) -> None:
+    def __init__(self, model: ScenarioHolder, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
         self.model = model
         layout = QtWidgets.QVBoxLayout(self)

@@ -25,10 +25,13 @@ DRAIN_MS = 33  # GUI drain period: about 30 Hz
 
 @dataclass(frozen=True)
 class Task:
+    """A stack of a run entry's fan, or (with `chunk`) a chunk of a sweep entry."""
+
     run_id: int
     batch_size: int
     scenario_toml: str
     members: list[Any]  # core.engine.Member, pickled
+    chunk: Any = None  # core.sweep.Chunk
 
 
 def worker_main(inbox: Any, outbox: Any) -> None:
@@ -55,6 +58,13 @@ def worker_main(inbox: Any, outbox: Any) -> None:
         if task.run_id in stopped:
             continue
         try:
+            if task.chunk is not None:
+                from core.sweep import run_chunk
+
+                rows = run_chunk(task.scenario_toml, task.chunk)
+                outbox.put(("rows", task.run_id, task.batch_size, rows))
+                outbox.put(("done", task.run_id, task.batch_size, None))
+                continue
             scenario = loads_scenario(task.scenario_toml, "<worker>")
             engine = Engine(scenario, task.members, task.batch_size, keep_norms=True)
             batch: list[Any] = []

@@ -8,6 +8,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import numpy as np
 
@@ -16,6 +17,16 @@ from core.fan import batch_ladder, fan_members
 from core.scenario import Scenario
 
 IDLE, RUNNING, DONE, STOPPED, FAILED = "idle", "running", "done", "stopped", "failed"
+
+
+class ScenarioHolder(Protocol):
+    """What an inspector edits: an entry model with a scenario (run and sweep entries)."""
+
+    scenario: Scenario
+
+    def set_scenario(self, scenario: Scenario) -> None: ...
+
+    def subscribe(self, listener: Callable[[str], None]) -> None: ...
 
 
 @dataclass

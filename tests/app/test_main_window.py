@@ -83,9 +83,9 @@ def curve_y(view: RunEntryView, label: str, key: str = "loss") -> np.ndarray:
 def test_the_demo_notebook_opens_without_training(qtbot: QtBot) -> None:
     win = MainWindow(load_notebook(demo_path()))
     qtbot.addWidget(win)
-    assert win.outline.count() == 3
-    assert len(win.run_views) == 2
-    assert all(v.model.status == IDLE for v in win.run_views)
+    assert win.outline.count() == 5
+    assert len(win.run_views) == 2 and len(win.sweep_views) == 1
+    assert all(v.model.status == IDLE for v in [*win.run_views, *win.sweep_views])
     assert not win.pool.started  # nothing trains, and no worker starts, until asked
     win.close()
 

@@ -1,0 +1,63 @@
+"""Sweep entries in the window: run to the end, maps equal the analysis, cancel."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pytest
+from pytestqt.qtbot import QtBot
+
+from app.main_window import MainWindow
+from core.analysis import analyse, stability_map
+from core.notebook import load_notebook
+from core.sweep_model import DONE, STOPPED
+from tests.core.test_sweep import SMALL
+
+
+@pytest.fixture
+def window(qtbot: QtBot, tmp_path: Path) -> Iterator[MainWindow]:
+    (tmp_path / "small.toml").write_text(SMALL)
+    path = tmp_path / "sweep.notebook.toml"
+    path.write_text(
+        'title = "S"\n[[entry]]\nkind = "sweep"\ntitle = "Small sweep"\npreset = "small.toml"\n'
+    )
+    win = MainWindow(load_notebook(path))
+    qtbot.addWidget(win)
+    win.show()
+    yield win
+    win.close()
+
+
+def test_a_sweep_entry_runs_to_the_end_and_its_maps_are_the_analysis_table(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    view = window.sweep_views[0]
+    window.run_sweep(view)
+    qtbot.waitUntil(lambda: view.model.status == DONE, timeout=120_000)
+    rows = view.model.rows
+    assert len(rows) == 54
+    results = analyse(rows, view.model.scenario.sweep.tolerance)
+    assert set(view.heatmaps) == set(results) == {"global-norm", "example-norm"}
+    for label, shown in view.heatmaps.items():
+        smap = stability_map(rows, label)
+        np.testing.assert_array_equal(shown, np.log10(np.where(smap.diverged, np.nan, smap.loss)))
+    for label, result in results.items():
+        assert view.model.results[label].windows == result.windows
+    text = view.sentences.text()
+    assert "global-norm:" in text and "example-norm:" in text
+    assert "finished" in view.status_label.text()
+
+
+def test_cancelling_a_sweep_entry_stops_it(qtbot: QtBot, window: MainWindow) -> None:
+    view = window.sweep_views[0]
+    view.model.scenario = view.model.scenario.with_overrides({"train.steps": 3000})
+    window.run_sweep(view)
+    qtbot.waitUntil(lambda: view.model.chunks_done >= 1, timeout=120_000)
+    window.stop_sweep(view)
+    assert view.model.status == STOPPED and "cancelled" in view.status_label.text()
+    done = view.model.chunks_done
+    qtbot.waitUntil(lambda: not window.pool.busy, timeout=60_000)
+    qtbot.wait(300)
+    assert view.model.chunks_done == done < view.model.chunks_total
