@@ -9,6 +9,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from app.colors import CLEAN_COLOR, LINE_STYLES, OUTLIER_COLOR, method_color
+from app.export import export_menu
 from core.fan import FAN_SIZE, fan_factors, member_for
 from core.run_model import DONE, FAILED, RUNNING, STOPPED, RunEntryModel, StackData, regime
 
@@ -50,7 +51,10 @@ class RunEntryView(QtWidgets.QFrame):
         for widget in (self.title_label, self.status_label):
             header.addWidget(widget)
         header.addStretch(1)
-        for button in (self.run_button, self.stop_button, self.reset_button):
+        self.export_button = QtWidgets.QToolButton()
+        self.export_button.setText("Export")
+        self.export_button.setPopupMode(QtWidgets.QToolButton.ToolButtonPopupMode.InstantPopup)
+        for button in (self.run_button, self.stop_button, self.reset_button, self.export_button):
             header.addWidget(button)
         layout.addLayout(header)
 
@@ -118,6 +122,7 @@ class RunEntryView(QtWidgets.QFrame):
         )
         hist.addItem(self.hist_line)
 
+        self.export_button.setMenu(export_menu(self, self.canvas, self.model))
         self.curves: dict[tuple[str, str], pg.PlotDataItem] = {}
         self.threshold_lines: dict[str, pg.InfiniteLine] = {}
         self._build_curves()

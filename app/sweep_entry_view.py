@@ -9,6 +9,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from app.colors import method_color
+from app.export import export_menu
 from core.analysis import sentence, stability_map
 from core.sweep_model import DONE, FAILED, RUNNING, STOPPED, SweepEntryModel
 
@@ -39,6 +40,10 @@ class SweepEntryView(QtWidgets.QFrame):
         self.cancel_button = QtWidgets.QPushButton("Cancel")
         header.addWidget(self.run_button)
         header.addWidget(self.cancel_button)
+        self.export_button = QtWidgets.QToolButton()
+        self.export_button.setText("Export")
+        self.export_button.setPopupMode(QtWidgets.QToolButton.ToolButtonPopupMode.InstantPopup)
+        header.addWidget(self.export_button)
         layout.addLayout(header)
         self.sentences = QtWidgets.QLabel()
         self.sentences.setWordWrap(True)
@@ -47,6 +52,7 @@ class SweepEntryView(QtWidgets.QFrame):
         self.canvas = pg.GraphicsLayoutWidget()
         self.canvas.setMinimumHeight(0)
         layout.addWidget(self.canvas, 1)
+        self.export_button.setMenu(export_menu(self, self.canvas, self.model))
         self.run_button.clicked.connect(lambda: self.run_requested.emit(self))
         self.cancel_button.clicked.connect(lambda: self.stop_requested.emit(self))
         model.subscribe(self._on_model_changed)

@@ -183,7 +183,7 @@ def run_sweep(
     keep = {p.key(scenario) for c in chunks if c not in todo for p in c.points}
     done_rows = [r for r in done_rows if _row_key(r) in keep]
     # Start from a clean file: finished chunks only, no torn line for new rows to join.
-    write_text_atomic(table_path, _csv_text(done_rows, header=True))
+    write_text_atomic(table_path, table_csv(done_rows, header=True))
     progress = SweepProgress(len(chunks) - len(todo), len(chunks), 0)
     if on_progress:
         on_progress(replace(progress))
@@ -193,7 +193,7 @@ def run_sweep(
     for chunk_rows in _execute(text, sorted(todo, key=lambda c: -c.cost), jobs):
         rows += chunk_rows
         with table_path.open("a", encoding="utf-8", newline="") as f:
-            f.write(_csv_text(chunk_rows, header=False))
+            f.write(table_csv(chunk_rows, header=False))
             f.flush()
             os.fsync(f.fileno())
         progress.done += 1
@@ -202,7 +202,7 @@ def run_sweep(
             on_progress(replace(progress))
 
     rows = sort_table(scenario, rows)
-    write_text_atomic(table_path, _csv_text(rows, header=True))
+    write_text_atomic(table_path, table_csv(rows, header=True))
     return rows
 
 
@@ -271,7 +271,8 @@ def sort_table(scenario: Scenario, rows: list[dict[str, Any]]) -> list[dict[str,
     return sorted(rows, key=key)
 
 
-def _csv_text(rows: list[dict[str, Any]], header: bool) -> str:
+def table_csv(rows: list[dict[str, Any]], header: bool) -> str:
+    """Sweep rows as sweep.csv text (with or without the header line)."""
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     if header:

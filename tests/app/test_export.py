@@ -1,0 +1,51 @@
+"""Export: plots to PNG and SVG, entry data to CSV; every file parses back."""
+
+from __future__ import annotations
+
+import csv
+import xml.etree.ElementTree as ElementTree
+from pathlib import Path
+
+import numpy as np
+from PySide6 import QtGui
+from pytestqt.qtbot import QtBot
+
+from app.export import export_csv, export_image
+from app.main_window import MainWindow
+from core.run_model import DONE
+from tests.app.conftest import trained
+
+
+def test_plots_export_to_png_and_svg_files_that_parse(
+    qtbot: QtBot, window: MainWindow, tmp_path: Path
+) -> None:
+    view = trained(qtbot, window)
+    png, svg = tmp_path / "plots.png", tmp_path / "plots.svg"
+    export_image(view.canvas, png)
+    export_image(view.canvas, svg)
+    image = QtGui.QImage(str(png))
+    assert not image.isNull() and image.width() >= 800 and image.height() > 200
+    root = ElementTree.parse(svg).getroot()
+    assert root.tag.endswith("svg")
+    assert len(list(root.iter())) > 50  # axes, curves and text, not an empty page
+
+
+def test_a_run_entry_exports_its_fan_as_csv(
+    qtbot: QtBot, window: MainWindow, tmp_path: Path
+) -> None:
+    view = trained(qtbot, window)
+    assert view.model.status == DONE
+    path = tmp_path / "fan.csv"
+    export_csv(view.model, path)
+    with path.open() as f:
+        rows = list(csv.DictReader(f))
+    stacks = view.model.stacks
+    expected = sum(len(s.members) * s.filled for s in stacks.values())
+    assert len(rows) == expected
+    batch = view.batch_size
+    member = view.member_index("global-norm")
+    assert member is not None
+    mine = [r for r in rows if int(r["batch_size"]) == batch and int(r["member"]) == member]
+    np.testing.assert_array_equal(
+        [float(r["val_loss"]) for r in mine], stacks[batch].values["val_loss"][:, member]
+    )
