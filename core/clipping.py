@@ -155,11 +155,6 @@ def example_agc_watch(
 BatchResult = tuple[torch.Tensor, torch.Tensor, torch.Tensor]  # coefficient, watched, share
 
 
-def member_sq(tensors: list[torch.Tensor]) -> torch.Tensor:
-    """Squared L2 norm over all of a member's tensors, (K,)."""
-    return sum((t * t).flatten(1).sum(1) for t in tensors)  # type: ignore[return-value]
-
-
 def global_norm(flat: torch.Tensor, threshold: torch.Tensor) -> BatchResult:
     """g <- g * min(1, t / |g|) over all parameters at once."""
     norm = torch.linalg.vector_norm(flat, dim=1)

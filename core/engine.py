@@ -92,10 +92,6 @@ def run_members(scenario: Scenario) -> list[Member]:
     return [Member(c, scenario.train.seed) for c in scenario.clip]
 
 
-def with_threshold(member: Member, threshold: float) -> Member:
-    return dataclasses.replace(member, clip=dataclasses.replace(member.clip, threshold=threshold))
-
-
 @dataclass(frozen=True)
 class StepRecord:
     """What one logged step measured: each metric is an array over the K members."""
