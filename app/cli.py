@@ -10,11 +10,15 @@ import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TextIO
+from typing import TYPE_CHECKING, TextIO
 
 import numpy as np
 
 from core.errors import GradfenceInputError
+
+if TYPE_CHECKING:  # the commands import their modules lazily, to start fast
+    from core.profile import NormProfile
+    from core.results import RunResult
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
 
@@ -233,10 +237,7 @@ def command_sweep(
     return EXIT_OK
 
 
-def profile_sentence(profile: object) -> str:
-    from core.profile import NormProfile
-
-    assert isinstance(profile, NormProfile)
+def profile_sentence(profile: NormProfile) -> str:
     noise = (
         f"at step {profile.checkpoint_step}, |G|^2 = {profile.grad_sq:.3g} and "
         f"tr(Sigma) = {profile.trace:.3g} (noise scale B_simple = {profile.noise_scale:.3g})"
@@ -313,11 +314,8 @@ class Progress:
             self.stream.flush()
 
 
-def format_table(result: object) -> str:
+def format_table(result: RunResult) -> str:
     """Final results per member: the loss, the task metric, the mean clipped share."""
-    from core.results import RunResult
-
-    assert isinstance(result, RunResult)
     metric = "val_accuracy" if "val_accuracy" in result.metrics else "val_r2"
     rows = [
         (

@@ -94,7 +94,7 @@ class RunEntryModel:
         return batch_ladder(self.scenario)
 
     def set_scenario(self, scenario: Scenario) -> None:
-        if scenario.hash() == self.scenario.hash() and scenario == self.scenario:
+        if scenario == self.scenario:
             return
         self.scenario = scenario
         if self.stacks:

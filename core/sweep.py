@@ -179,7 +179,7 @@ def run_sweep(
     chunks = plan(scenario)
     finished = {_row_key(r) for r in done_rows}
     todo = [c for c in chunks if not all(p.key(scenario) in finished for p in c.points)]
-    # A chunk only partly on file (not possible with whole-chunk appends) would be redone whole.
+    # A chunk only partly on file (a kill that tore its append) is redone whole.
     keep = {p.key(scenario) for c in chunks if c not in todo for p in c.points}
     done_rows = [r for r in done_rows if _row_key(r) in keep]
     # Start from a clean file: finished chunks only, no torn line for new rows to join.
