@@ -17,7 +17,6 @@ import numpy as np
 from core.errors import GradfenceInputError
 
 if TYPE_CHECKING:  # the commands import their modules lazily, to start fast
-    from core.profile import NormProfile
     from core.results import RunResult
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
@@ -100,6 +99,16 @@ def build_parser() -> argparse.ArgumentParser:
         default=60.0,
         help="run the entries this long at most (default 60; they may finish sooner)",
     )
+    shot.add_argument(
+        "--size",
+        type=_size,
+        default=(1600, 1100),
+        metavar="WxH",
+        help="the window's size in pixels (default 1600x1100)",
+    )
+    shot.add_argument(
+        "--entry", type=int, metavar="N", help="scroll entry N (from 1) to the top and select it"
+    )
 
     check = commands.add_parser("check", help="validate presets and notebooks")
     check.add_argument("files", type=Path, nargs="+", metavar="FILE")
@@ -139,7 +148,7 @@ def _dispatch(argv: list[str]) -> int:
 
         if not args.seconds > 0:
             raise GradfenceInputError(f"--seconds = {args.seconds:g} must be greater than 0.")
-        return shot(args.notebook, args.out, args.seconds)
+        return shot(args.notebook, args.out, args.seconds, args.size, args.entry)
     if args.command == "run":
         return command_run(args.preset, args.overrides, args.out, args.trace)
     if args.command == "sweep":
@@ -213,7 +222,7 @@ def command_sweep(
     progress.close()
     results = analyse(rows, tolerance)
     from core.fileio import write_text_atomic
-    from core.profile import norm_profile, suggest_thresholds
+    from core.profile import norm_profile, profile_sentence, suggest_thresholds
 
     write_text_atomic(
         out / "windows.json", json.dumps(windows_json(results, tolerance), indent=2) + "\n"
@@ -235,20 +244,6 @@ def command_sweep(
         )
     print(f"wrote sweep.csv, windows.json and profile.json to {out}")
     return EXIT_OK
-
-
-def profile_sentence(profile: NormProfile) -> str:
-    noise = (
-        f"at step {profile.checkpoint_step}, |G|^2 = {profile.grad_sq:.3g} and "
-        f"tr(Sigma) = {profile.trace:.3g} (noise scale B_simple = {profile.noise_scale:.3g})"
-    )
-    hiding = profile.hiding_batch
-    if hiding is None:
-        return f"norm profile: {noise}."
-    return (
-        f"norm profile: {noise}; one outlier of gradient norm {profile.outlier_norm:.3g} "
-        f"hides in the gradient noise once the batch size passes about {hiding:.0f}."
-    )
 
 
 def command_check(files: list[Path]) -> int:
@@ -363,6 +358,18 @@ def _threshold_text(rule: str, threshold: float) -> str:
 
 def _fmt(value: float) -> str:
     return "-" if math.isnan(value) else f"{value:.4g}"
+
+
+def _size(text: str) -> tuple[int, int]:
+    """`1600x1100` as (1600, 1100), for --size."""
+    parts = text.lower().split("x")
+    try:
+        width, height = (int(p) for p in parts)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not WIDTHxHEIGHT, e.g. 1600x1100") from None
+    if not (200 <= width <= 8000 and 200 <= height <= 8000):
+        raise argparse.ArgumentTypeError(f"{text}: each side must be 200 to 8000 pixels")
+    return width, height
 
 
 if __name__ == "__main__":

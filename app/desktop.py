@@ -6,10 +6,15 @@ import os
 import sys
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from core.errors import GradfenceInputError
-from core.notebook import load_notebook
+from core.notebook import Notebook, load_notebook
 from core.presets import shipped_dir
+from core.userdata import add_recent
+
+if TYPE_CHECKING:
+    from app.main_window import MainWindow
 
 DEMO_NOTEBOOK = "demo.notebook.toml"
 
@@ -39,27 +44,56 @@ def launch(path: Path | None = None) -> int:
             "a notebook without one, or set QT_QPA_PLATFORM=offscreen."
         )
     app = _application()
-    from app.main_window import MainWindow
-
-    window = MainWindow(notebook)
-    window.show()
+    window = open_window(notebook)
     window.pool.start()  # workers import torch in the background; nothing trains until asked
     return int(app.exec())  # type: ignore[attr-defined]
 
 
-def shot(path: Path, out: Path, seconds: float) -> int:
-    """Run a notebook's run entries offscreen for `seconds` (or to the end); save the window."""
+def open_window(notebook: Notebook) -> MainWindow:
+    """The window on `notebook`, shown, with any edits a crash left unsaved offered back."""
+    from app.main_window import MainWindow
+
+    window = MainWindow(notebook)
+    window.show()
+    if notebook.path is not None:
+        add_recent(notebook.path)
+    window.offer_recovery()
+    return window
+
+
+def shot(
+    path: Path,
+    out: Path,
+    seconds: float,
+    size: tuple[int, int] = (1600, 1100),
+    entry: int | None = None,
+) -> int:
+    """Run a notebook's entries offscreen for `seconds` (or to the end); save the window.
+
+    `entry` (1-based) scrolls that entry to the top and selects it; `size` is the window's.
+    Results already cached beside the notebook are shown without training again.
+    """
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     notebook = load_notebook(path)
+    if entry is not None and not 1 <= entry <= len(notebook.entries):
+        raise GradfenceInputError(
+            f"--entry {entry}: {path} has entries 1 to {len(notebook.entries)}."
+        )
     app = _application()
     from PySide6 import QtWidgets
 
     from app.main_window import MainWindow
+    from core.run_model import DONE
 
     window = MainWindow(notebook)
-    window.resize(1600, 1100)
+    window.resize(*size)
     window.show()
-    window.run_all()
+    for view in window.run_views:
+        if view.model.status != DONE:
+            window.run_view(view)
+    for sweep in window.sweep_views:
+        if sweep.model.status != DONE:
+            window.run_sweep(sweep)
     deadline = time.monotonic() + seconds
     while time.monotonic() < deadline and not window.all_finished():
         app.processEvents()  # type: ignore[attr-defined]
@@ -69,6 +103,11 @@ def shot(path: Path, out: Path, seconds: float) -> int:
         time.sleep(0.04)
     for view in window.run_views:
         view.refresh()
+    if entry is not None:
+        card = window.cards[entry - 1]
+        window.select_card(card)
+        app.processEvents()  # type: ignore[attr-defined]
+        window.scroll_area.verticalScrollBar().setValue(card.y())
     app.processEvents()  # type: ignore[attr-defined]
     out.parent.mkdir(parents=True, exist_ok=True)
     saved = window.grab().save(str(out))

@@ -144,6 +144,9 @@ class RunEntryView(QtWidgets.QFrame):
     # -- model -> view -----------------------------------------------------------------------
 
     def _on_model_changed(self, what: str) -> None:
+        if what == "title":
+            self.title_label.setText(f"<b>{self.model.title}</b>")
+            return
         if what == "scenario":
             self._build_curves()
             self._fill_batches()
@@ -219,7 +222,7 @@ class RunEntryView(QtWidgets.QFrame):
             m.status, "not run"
         )
         if m.stale:
-            text += " - scenario changed since this run: results are stale, run again"
+            text += " - stale: the scenario changed since this run, its plots are hidden"
         if m.status == FAILED:
             text += f": {m.error.strip().splitlines()[-1] if m.error else ''}"
         self.status_label.setText(text)
@@ -278,7 +281,9 @@ class RunEntryView(QtWidgets.QFrame):
         """Point every curve at the selected members; one setData per curve."""
         self._dirty = False
         self.redraws += 1
-        stack = self.model.stacks.get(self.batch_size)
+        # Results of another scenario are never drawn: an edit clears the plots until a new run
+        # (or an undo back to the scenario they belong to).
+        stack = None if self.model.stale else self.model.stacks.get(self.batch_size)
         lines = []
         for label, method, _ in self._labels():
             clip = next(c for c in self.model.scenario.clip if c.display_name == label)
@@ -311,9 +316,12 @@ class RunEntryView(QtWidgets.QFrame):
             lines.append(self._readout_line(stack, label, method, clip.rule, i))
         self._draw_histogram(stack)
         header = f"batch size {self.batch_size}, thresholds {self.factor:.3g} x preset"
-        self.readout.setText(
-            header + "<br>" + "<br>".join(lines) if lines else header + ": not run yet"
+        empty = (
+            ": the results belong to an earlier scenario; run again, or undo the edit"
+            if self.model.stale
+            else ": not run yet"
         )
+        self.readout.setText(header + "<br>" + "<br>".join(lines) if lines else header + empty)
 
     def _readout_line(self, stack: StackData, label: str, method: str, rule: str, i: int) -> str:
         v, rows = stack.values, slice(0, stack.filled)

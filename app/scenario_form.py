@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import typing
+from collections.abc import Callable
 from typing import Any
 
 from PySide6 import QtWidgets
@@ -22,10 +23,25 @@ TABLES = ("data", "outliers", "model", "train", "sweep")
 INT_LIMIT = 2**31 - 1
 
 
+Commit = Callable[[ScenarioHolder, Scenario], None]
+
+
+def set_directly(model: ScenarioHolder, scenario: Scenario) -> None:
+    model.set_scenario(scenario)
+
+
 class ScenarioForm(QtWidgets.QScrollArea):
-    def __init__(self, model: ScenarioHolder, parent: QtWidgets.QWidget | None = None) -> None:
+    """`commit(model, scenario)` applies an edit (the window passes one that can be undone)."""
+
+    def __init__(
+        self,
+        model: ScenarioHolder,
+        commit: Commit | None = None,
+        parent: QtWidgets.QWidget | None = None,
+    ) -> None:
         super().__init__(parent)
         self.model = model
+        self._commit = commit or set_directly
         self.setWidgetResizable(True)
         self.widgets: dict[str, QtWidgets.QWidget] = {}
         self.error_label = QtWidgets.QLabel()
@@ -119,7 +135,10 @@ class ScenarioForm(QtWidgets.QScrollArea):
             self.error_label.setText(str(exc))
             return
         self.error_label.setText("")
-        self.model.set_scenario(scenario)
+        self._commit(self.model, scenario)
+
+    def detach(self) -> None:
+        self.model.unsubscribe(self._on_model_changed)
 
     def _on_model_changed(self, what: str) -> None:
         if what == "scenario":

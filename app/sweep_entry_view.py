@@ -11,6 +11,7 @@ from PySide6 import QtCore, QtWidgets
 from app.colors import method_color
 from app.export import export_menu
 from core.analysis import sentence, stability_map
+from core.profile import NormProfile, profile_sentence
 from core.sweep_model import DONE, FAILED, RUNNING, STOPPED, SweepEntryModel
 
 
@@ -29,7 +30,8 @@ class SweepEntryView(QtWidgets.QFrame):
         )
         layout = QtWidgets.QVBoxLayout(self)
         header = QtWidgets.QHBoxLayout()
-        header.addWidget(QtWidgets.QLabel(f"<b>{model.title}</b> (sweep)"))
+        self.title_label = QtWidgets.QLabel(f"<b>{model.title}</b> (sweep)")
+        header.addWidget(self.title_label)
         self.status_label = QtWidgets.QLabel()
         header.addWidget(self.status_label)
         header.addStretch(1)
@@ -65,9 +67,20 @@ class SweepEntryView(QtWidgets.QFrame):
         self._update_status()
 
     def _on_model_changed(self, what: str) -> None:
+        if what == "title":
+            self.title_label.setText(f"<b>{self.model.title}</b> (sweep)")
         self._update_status()
-        if what == "status" and self.model.status == DONE:
+        if what in ("status", "scenario"):
+            self.show_results()
+
+    def show_results(self) -> None:
+        """The plots of a finished sweep of the current scenario; nothing otherwise."""
+        if self.model.status == DONE and not self.model.stale:
             self._draw()
+        else:
+            self.canvas.clear()
+            self.heatmaps = {}
+            self.sentences.setText("")
 
     def _update_status(self) -> None:
         m = self.model
@@ -80,7 +93,7 @@ class SweepEntryView(QtWidgets.QFrame):
         if left is not None:
             text += f", about {left:.0f} s left"
         if m.stale:
-            text += " - scenario changed since this sweep: results are stale, run again"
+            text += " - stale: the scenario changed since this sweep, its plots are hidden"
         if m.status == FAILED and m.error:
             text += ": " + m.error.strip().splitlines()[-1]
         self.status_label.setText(text)
@@ -171,5 +184,56 @@ class SweepEntryView(QtWidgets.QFrame):
                     pen=pg.mkPen(color + "88"),
                 )
                 chart.addItem(region)
-        self.canvas.setMinimumHeight(330 * ((len(labels) + 1) // 2 + 1))
-        self.sentences.setText("<br>".join(sentence(w) for w in self.model.results.values()))
+        rows_used = (len(labels) + 1) // 2 + 1
+        if self.model.profile is not None:
+            self._draw_profile(self.model.profile, rows_used)
+            rows_used += 1
+        self.canvas.setMinimumHeight(330 * rows_used)
+        lines = [sentence(w) for w in self.model.results.values()]
+        if self.model.profile is not None:
+            lines.append(profile_sentence(self.model.profile))
+        self.sentences.setText("<br>".join(lines))
+
+    def _draw_profile(self, profile: NormProfile, row: int) -> None:
+        """Predicted batch-mean gradient norm against B, with the thresholds drawn across it."""
+        plot = self.canvas.addPlot(
+            row=row,
+            col=0,
+            colspan=4,
+            title=f"norm profile at step {profile.checkpoint_step}: "
+            "expected batch-mean gradient norm, clean data",
+        )
+        plot.setLogMode(x=True, y=True)
+        low, high = min(profile.batch_sizes), max(profile.batch_sizes)
+        xs = np.geomspace(max(1, low / 2), min(high * 2, profile.population), 60)
+        ys = [math.sqrt(profile.predicted_sq(round(b))) for b in xs]
+        plot.addLegend(offset=(-10, 10), brush=(255, 255, 255, 210))
+        plot.plot(xs, ys, pen=pg.mkPen("#000000", width=2), name="sqrt(|G|^2 + tr(Sigma)/B)")
+        plot.plot(
+            xs,
+            np.full(len(xs), math.sqrt(max(profile.grad_sq, 1e-300))),
+            pen=pg.mkPen("#777777", width=1, style=QtCore.Qt.PenStyle.DashLine),
+            name="|G|, the mean gradient",
+        )
+        for label, threshold in profile.thresholds.items():
+            clip = next((c for c in self.model.scenario.clip if c.display_name == label), None)
+            color = method_color(clip.method if clip else "global-norm")
+            plot.plot(
+                xs,
+                np.full(len(xs), threshold),
+                pen=pg.mkPen(color, width=2, style=QtCore.Qt.PenStyle.DotLine),
+                name=f"{label} threshold {threshold:g}",
+            )
+        hiding = profile.hiding_batch
+        if hiding is not None and xs[0] <= hiding <= xs[-1]:
+            line = pg.InfiniteLine(
+                pos=math.log10(hiding),
+                angle=90,
+                pen=pg.mkPen("#D55E00", width=1, style=QtCore.Qt.PenStyle.DashLine),
+                label=f"outliers hidden past B = {hiding:.0f}",
+                labelOpts={"position": 0.85, "color": "#D55E00"},
+            )
+            plot.addItem(line)
+        plot.getAxis("bottom").setTicks([[(math.log10(b), str(b)) for b in profile.batch_sizes]])
+        plot.setLabel("bottom", "batch size")
+        plot.setLabel("left", "L2 norm")

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from app.scenario_form import Commit, set_directly
 from core.errors import GradfenceInputError
 from core.run_model import ScenarioHolder
 from core.scenario import dumps_scenario, loads_scenario
@@ -16,9 +17,15 @@ DEBOUNCE_MS = 300
 
 
 class TomlEditor(QtWidgets.QWidget):
-    def __init__(self, model: ScenarioHolder, parent: QtWidgets.QWidget | None = None) -> None:
+    def __init__(
+        self,
+        model: ScenarioHolder,
+        commit: Commit | None = None,
+        parent: QtWidgets.QWidget | None = None,
+    ) -> None:
         super().__init__(parent)
         self.model = model
+        self._commit = commit or set_directly
         layout = QtWidgets.QVBoxLayout(self)
         self.editor = QtWidgets.QPlainTextEdit()
         self.editor.setFont(
@@ -56,12 +63,16 @@ class TomlEditor(QtWidgets.QWidget):
         self.status.setStyleSheet("color: #006000")
         self._applying = True
         try:
-            self.model.set_scenario(scenario)
+            self._commit(self.model, scenario)
         finally:
             self._applying = False
         return True
 
     _applying = False
+
+    def detach(self) -> None:
+        self._timer.stop()
+        self.model.unsubscribe(self._on_model_changed)
 
     def _on_model_changed(self, what: str) -> None:
         if what == "scenario" and not self._applying:

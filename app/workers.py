@@ -25,13 +25,15 @@ DRAIN_MS = 33  # GUI drain period: about 30 Hz
 
 @dataclass(frozen=True)
 class Task:
-    """A stack of a run entry's fan, or (with `chunk`) a chunk of a sweep entry."""
+    """A stack of a run entry's fan, (with `chunk`) a chunk of a sweep entry, or (with
+    `profile`) a sweep entry's norm profile."""
 
     run_id: int
     batch_size: int
     scenario_toml: str
     members: list[Any]  # core.engine.Member, pickled
     chunk: Any = None  # core.sweep.Chunk
+    profile: bool = False
 
 
 def worker_main(inbox: Any, outbox: Any) -> None:
@@ -58,6 +60,13 @@ def worker_main(inbox: Any, outbox: Any) -> None:
         if task.run_id in stopped:
             continue
         try:
+            if task.profile:
+                from core.profile import norm_profile
+
+                profile = norm_profile(loads_scenario(task.scenario_toml, "<worker>"))
+                outbox.put(("profile", task.run_id, 0, profile))
+                outbox.put(("done", task.run_id, 0, None))
+                continue
             if task.chunk is not None:
                 from core.sweep import run_chunk
 

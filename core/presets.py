@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import os
-from dataclasses import dataclass
+import re
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 from core.errors import GradfenceInputError
-from core.scenario import Scenario, load_scenario
-
-HOME_VARIABLE = "GRADFENCE_HOME"  # overrides the per-user folder (tests, portable setups)
+from core.scenario import Scenario, load_scenario, save_scenario
+from core.userdata import data_home
 
 
 def shipped_dir() -> Path:
@@ -19,12 +18,7 @@ def shipped_dir() -> Path:
 
 def user_dir() -> Path:
     """The folder of the user's own presets."""
-    home = os.environ.get(HOME_VARIABLE)
-    if home:
-        return Path(home) / "presets"
-    import platformdirs
-
-    return Path(platformdirs.user_data_dir("gradfence", appauthor=False)) / "presets"
+    return data_home() / "presets"
 
 
 @dataclass(frozen=True)
@@ -53,3 +47,22 @@ def list_presets() -> list[PresetInfo]:
             except GradfenceInputError as exc:
                 found.append(PresetInfo(path, shipped, None, str(exc)))
     return found
+
+
+def preset_file_name(name: str) -> str:
+    """A file name for a preset called `name`: lower case, words joined by hyphens."""
+    slug = re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-")
+    if not slug:
+        raise GradfenceInputError("a preset needs a name with at least one letter or digit.")
+    return f"{slug}.toml"
+
+
+def save_user_preset(scenario: Scenario, name: str, overwrite: bool = False) -> Path:
+    """Save `scenario` as the user preset `name`; shipped presets are never written."""
+    path = user_dir() / preset_file_name(name)
+    if path.resolve().is_relative_to(shipped_dir().resolve()):
+        raise GradfenceInputError(f"{path}: shipped presets are read-only.")
+    if path.exists() and not overwrite:
+        raise FileExistsError(path)
+    save_scenario(replace(scenario, name=name), path)
+    return path

@@ -63,6 +63,21 @@ class NormProfile:
         return out
 
 
+def profile_sentence(profile: NormProfile) -> str:
+    """The profile in one sentence: the noise, and where one outlier hides in it."""
+    noise = (
+        f"at step {profile.checkpoint_step}, |G|^2 = {profile.grad_sq:.3g} and "
+        f"tr(Sigma) = {profile.trace:.3g} (noise scale B_simple = {profile.noise_scale:.3g})"
+    )
+    hiding = profile.hiding_batch
+    if hiding is None:
+        return f"norm profile: {noise}."
+    return (
+        f"norm profile: {noise}; one outlier of gradient norm {profile.outlier_norm:.3g} "
+        f"hides in the gradient noise once the batch size passes about {hiding:.0f}."
+    )
+
+
 def _checkpoint(scenario: Scenario, steps: int) -> Engine:
     """An unclipped member trained for `steps` steps, float64 for the statistics."""
     s = scenario.with_overrides({"train.steps": max(steps, 1), "train.eval_every": max(steps, 1)})

@@ -22,11 +22,53 @@ IDLE, RUNNING, DONE, STOPPED, FAILED = "idle", "running", "done", "stopped", "fa
 class ScenarioHolder(Protocol):
     """What an inspector edits: an entry model with a scenario (run and sweep entries)."""
 
+    title: str
     scenario: Scenario
 
     def set_scenario(self, scenario: Scenario) -> None: ...
 
     def subscribe(self, listener: Callable[[str], None]) -> None: ...
+
+    def unsubscribe(self, listener: Callable[[str], None]) -> None: ...
+
+    def set_title(self, title: str) -> None: ...
+
+
+class Observable:
+    """Listeners called with what changed: "title", "scenario", "status" or "data"."""
+
+    _listeners: list[Callable[[str], None]]
+    title: str
+
+    def subscribe(self, listener: Callable[[str], None]) -> None:
+        self._listeners.append(listener)
+
+    def unsubscribe(self, listener: Callable[[str], None]) -> None:
+        if listener in self._listeners:
+            self._listeners.remove(listener)
+
+    def _emit(self, what: str) -> None:
+        for listener in list(self._listeners):
+            listener(what)
+
+    def set_title(self, title: str) -> None:
+        if title != self.title:
+            self.title = title
+            self._emit("title")
+
+
+@dataclass
+class NoteEntryModel(Observable):
+    """A note entry: a title and Markdown text."""
+
+    title: str
+    text: str = ""
+    _listeners: list[Callable[[str], None]] = field(default_factory=list, repr=False)
+
+    def set_text(self, text: str) -> None:
+        if text != self.text:
+            self.text = text
+            self._emit("text")
 
 
 @dataclass
@@ -69,43 +111,44 @@ class StackData:
 
 
 @dataclass
-class RunEntryModel:
+class RunEntryModel(Observable):
     """A run entry of a notebook."""
 
     title: str
     scenario: Scenario
     status: str = IDLE
-    stale: bool = False  # results belong to an earlier scenario
+    stale: bool = False  # the results belong to another scenario: never drawn as current
     error: str = ""
     run_id: int = 0
     stacks: dict[int, StackData] = field(default_factory=dict)
+    results_hash: str = ""  # hash of the scenario the stacks were trained on
     _listeners: list[Callable[[str], None]] = field(default_factory=list, repr=False)
-
-    def subscribe(self, listener: Callable[[str], None]) -> None:
-        """`listener(what)` is called with "scenario", "status" or "data"."""
-        self._listeners.append(listener)
-
-    def _emit(self, what: str) -> None:
-        for listener in list(self._listeners):
-            listener(what)
 
     @property
     def batch_sizes(self) -> tuple[int, ...]:
         return batch_ladder(self.scenario)
 
     def set_scenario(self, scenario: Scenario) -> None:
+        """Replace the scenario; results of another scenario become stale (an undo back to
+        theirs makes them current again)."""
         if scenario == self.scenario:
             return
         self.scenario = scenario
-        if self.stacks:
-            self.stale = True
+        self.stale = bool(self.stacks) and self.results_hash != scenario.hash()
         self._emit("scenario")
+
+    def restore(self, stacks: dict[int, StackData]) -> None:
+        """Finished results of the current scenario (from the cache)."""
+        self.stacks, self.results_hash = stacks, self.scenario.hash()
+        self.status, self.stale, self.error = DONE, False, ""
+        self._emit("status")
 
     def begin(self, run_id: int) -> dict[int, list[Member]]:
         """Start a run: fresh arrays for every batch size; returns the members per batch size."""
         self.run_id = run_id
         members = fan_members(self.scenario)
         self.stacks = {b: StackData.empty(self.scenario, b, members) for b in self.batch_sizes}
+        self.results_hash = self.scenario.hash()
         self.status, self.stale, self.error = RUNNING, False, ""
         self._emit("status")
         return {b: members for b in self.stacks}

@@ -11,7 +11,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from core.analysis import MethodWindows, analyse
-from core.run_model import DONE, FAILED, IDLE, RUNNING, STOPPED
+from core.profile import NormProfile
+from core.run_model import DONE, FAILED, IDLE, RUNNING, STOPPED, Observable
 from core.scenario import Scenario
 from core.sweep import Chunk, plan, sort_table
 
@@ -19,7 +20,9 @@ __all__ = ["DONE", "FAILED", "IDLE", "RUNNING", "STOPPED", "SweepEntryModel"]
 
 
 @dataclass
-class SweepEntryModel:
+class SweepEntryModel(Observable):
+    """A sweep entry: the chunks of the sweep and the norm profile, trained in the workers."""
+
     title: str
     scenario: Scenario
     status: str = IDLE
@@ -31,26 +34,31 @@ class SweepEntryModel:
     chunks_total: int = 0
     started: float = 0.0
     results: dict[str, MethodWindows] = field(default_factory=dict)
+    profile: NormProfile | None = None
+    results_hash: str = ""
     _listeners: list[Callable[[str], None]] = field(default_factory=list, repr=False)
-
-    def subscribe(self, listener: Callable[[str], None]) -> None:
-        self._listeners.append(listener)
-
-    def _emit(self, what: str) -> None:
-        for listener in list(self._listeners):
-            listener(what)
 
     def set_scenario(self, scenario: Scenario) -> None:
         if scenario == self.scenario:
             return
         self.scenario = scenario
-        if self.rows:
-            self.stale = True
+        self.stale = bool(self.rows) and self.results_hash != scenario.hash()
         self._emit("scenario")
 
+    def restore(self, rows: list[dict[str, Any]], profile: NormProfile | None) -> None:
+        """A finished sweep of the current scenario (from the cache)."""
+        self.rows = sort_table(self.scenario, rows)
+        self.results = analyse(self.rows, self.scenario.sweep.tolerance)
+        self.profile, self.results_hash = profile, self.scenario.hash()
+        self.chunks_done = self.chunks_total = len(plan(self.scenario))
+        self.status, self.stale, self.error = DONE, False, ""
+        self._emit("status")
+
     def begin(self, run_id: int) -> list[Chunk]:
+        """Start: returns the chunks to train, costliest first; the profile is asked for too."""
         chunks = sorted(plan(self.scenario), key=lambda c: -c.cost)
-        self.run_id, self.rows, self.results = run_id, [], {}
+        self.run_id, self.rows, self.results, self.profile = run_id, [], {}, None
+        self.results_hash = self.scenario.hash()
         self.chunks_done, self.chunks_total = 0, len(chunks)
         self.status, self.stale, self.error, self.started = RUNNING, False, "", time.monotonic()
         self._emit("status")
@@ -64,9 +72,20 @@ class SweepEntryModel:
         if self.chunks_done == self.chunks_total:
             self.rows = sort_table(self.scenario, self.rows)
             self.results = analyse(self.rows, self.scenario.sweep.tolerance)
+        self._finish_if_complete()
+        self._emit("data")
+
+    def add_profile(self, run_id: int, profile: NormProfile) -> None:
+        if run_id != self.run_id or self.status != RUNNING:
+            return
+        self.profile = profile
+        self._finish_if_complete()
+        self._emit("data")
+
+    def _finish_if_complete(self) -> None:
+        if self.chunks_done == self.chunks_total and self.profile is not None:
             self.status = DONE
             self._emit("status")
-        self._emit("data")
 
     def fail(self, run_id: int, message: str) -> None:
         if run_id == self.run_id:

@@ -6,6 +6,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from PySide6 import QtWidgets
 from pytestqt.qtbot import QtBot
 
 from app.main_window import MainWindow
@@ -50,6 +51,25 @@ threshold = 0.5
 method = "example-norm"
 threshold = 0.5
 """
+
+
+@pytest.fixture(autouse=True)
+def no_modal_questions(monkeypatch: pytest.MonkeyPatch) -> list[str]:
+    """Offscreen, a modal question would wait for ever: unsaved changes are discarded and
+    recovery copies declined unless a test says otherwise. Returns the questions asked."""
+    asked: list[str] = []
+
+    def unsaved(self: MainWindow) -> QtWidgets.QMessageBox.StandardButton:
+        asked.append("unsaved")
+        return QtWidgets.QMessageBox.StandardButton.Discard
+
+    def restore(self: MainWindow, found: object) -> bool:
+        asked.append("restore")
+        return False
+
+    monkeypatch.setattr(MainWindow, "ask_unsaved", unsaved)
+    monkeypatch.setattr(MainWindow, "ask_restore", restore)
+    return asked
 
 
 @pytest.fixture

@@ -12,6 +12,7 @@ from pytestqt.qtbot import QtBot
 from app.main_window import MainWindow
 from core.analysis import analyse, stability_map
 from core.notebook import load_notebook
+from core.profile import norm_profile
 from core.sweep_model import DONE, STOPPED
 from tests.core.test_sweep import SMALL
 
@@ -48,6 +49,15 @@ def test_a_sweep_entry_runs_to_the_end_and_its_maps_are_the_analysis_table(
     text = view.sentences.text()
     assert "global-norm:" in text and "example-norm:" in text
     assert "finished" in view.status_label.text()
+    # The norm profile came from a worker; it matches one computed here (float64 sums on
+    # one thread there, maybe two here: equal to 1e-9).
+    profile = view.model.profile
+    assert profile is not None and "norm profile: at step" in text
+    here = norm_profile(view.model.scenario)
+    for name in ("grad_sq", "trace", "outlier_norm"):
+        assert getattr(profile, name) == pytest.approx(getattr(here, name), rel=1e-9)
+    titles = [item.titleLabel.text for item in view.canvas.ci.items if hasattr(item, "titleLabel")]
+    assert any("norm profile" in t for t in titles)
 
 
 def test_cancelling_a_sweep_entry_stops_it(qtbot: QtBot, window: MainWindow) -> None:
