@@ -110,6 +110,12 @@ def build_parser() -> argparse.ArgumentParser:
         "--entry", type=int, metavar="N", help="scroll entry N (from 1) to the top and select it"
     )
 
+    report = commands.add_parser(
+        "report", help="write a notebook as one self-contained HTML file (runs what is not cached)"
+    )
+    report.add_argument("notebook", type=Path, help="a .notebook.toml file")
+    report.add_argument("--out", type=Path, required=True, help="the HTML file to write")
+
     check = commands.add_parser("check", help="validate presets and notebooks")
     check.add_argument("files", type=Path, nargs="+", metavar="FILE")
 
@@ -149,6 +155,15 @@ def _dispatch(argv: list[str]) -> int:
         if not args.seconds > 0:
             raise GradfenceInputError(f"--seconds = {args.seconds:g} must be greater than 0.")
         return shot(args.notebook, args.out, args.seconds, args.size, args.entry)
+    if args.command == "report":
+        from app.report import write_report
+
+        if args.out.suffix.lower() not in (".html", ".htm"):
+            raise GradfenceInputError(f"--out {args.out}: a report is an .html file.")
+        count, failed = write_report(args.notebook, args.out)
+        detail = f"; failed: {', '.join(failed)}" if failed else ""
+        print(f"wrote {args.out} ({count} entries{detail})")
+        return EXIT_OK if not failed else EXIT_INTERNAL
     if args.command == "run":
         return command_run(args.preset, args.overrides, args.out, args.trace)
     if args.command == "sweep":

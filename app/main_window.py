@@ -141,6 +141,12 @@ class MainWindow(QtWidgets.QMainWindow):
         self.save_as_action = action(
             "Save &as...", keys.SaveAs, self.save_as, "Save the notebook under another name"
         )
+        self.report_action = action(
+            "Export &report...",
+            "",
+            self.export_report,
+            "Write the notebook as one self-contained HTML file (runs what is not finished)",
+        )
         self.quit_action = action("&Quit", "Ctrl+Q", self.close, "Quit Gradfence")
         self.undo_action = self.undo_stack.createUndoAction(self, "&Undo")
         self.undo_action.setShortcut(QtGui.QKeySequence(keys.Undo))
@@ -195,6 +201,8 @@ class MainWindow(QtWidgets.QMainWindow):
         file_menu.addSeparator()
         for a in (self.save_action, self.save_as_action):
             file_menu.addAction(a)
+        file_menu.addSeparator()
+        file_menu.addAction(self.report_action)
         file_menu.addSeparator()
         file_menu.addAction(self.quit_action)
         edit_menu = menu.addMenu("&Edit")
@@ -316,6 +324,9 @@ class MainWindow(QtWidgets.QMainWindow):
         self.outline.clear()
         for card in self.cards:
             self.outline.addItem(f"{card.kind}: {card.model.title}")
+            item = self.outline.item(self.outline.count() - 1)
+            if item is not None:
+                item.setToolTip(card.model.title)
         if self.selected_card in self.cards:
             self.outline.setCurrentRow(self.cards.index(self.selected_card))
         self.outline.blockSignals(False)
@@ -646,6 +657,44 @@ class MainWindow(QtWidgets.QMainWindow):
             self._store_cached(card)
         self._update_title()
         self.statusBar().showMessage(f"Saved {path}", 5000)
+        return True
+
+    def export_report(self, path: Path | None = None) -> bool:
+        """Run what has no current results (with a progress dialog), then write the report."""
+        from app.report import overall_progress, report_html, start_pending
+
+        if path is None:
+            default = self.path.with_suffix("").with_suffix(".html") if self.path else None
+            name, _ = QtWidgets.QFileDialog.getSaveFileName(
+                self, "Export report", str(default or self._folder()), "HTML (*.html)"
+            )
+            if not name:
+                return False
+            path = Path(name).with_suffix(".html")
+        todo = start_pending(self)
+        if todo:
+            dialog = QtWidgets.QProgressDialog(
+                f"Running {len(todo)} entries for the report...", "Cancel", 0, 1000, self
+            )
+            dialog.setWindowTitle("Export report")
+            dialog.setWindowModality(QtCore.Qt.WindowModality.WindowModal)
+            dialog.show()
+            while not self.all_finished():
+                QtWidgets.QApplication.processEvents()
+                if dialog.wasCanceled():
+                    self.stop_all()
+                    return False
+                dialog.setValue(int(overall_progress(todo) * 1000))
+                time.sleep(0.02)
+            dialog.close()
+        from core.fileio import write_text_atomic
+
+        try:
+            write_text_atomic(path, report_html(self))
+        except OSError as exc:
+            QtWidgets.QMessageBox.warning(self, "Cannot write report", f"{path}: {exc}")
+            return False
+        self.statusBar().showMessage(f"Wrote {path}", 8000)
         return True
 
     # -- autosave and recovery ---------------------------------------------------------------

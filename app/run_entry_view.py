@@ -8,6 +8,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
+from app.axes import LogAxis
 from app.colors import CLEAN_COLOR, LINE_STYLES, OUTLIER_COLOR, method_color
 from app.export import export_menu
 from core.fan import FAN_SIZE, fan_factors, member_for
@@ -92,7 +93,8 @@ class RunEntryView(QtWidgets.QFrame):
         layout.addWidget(self.canvas, 1)
         self.plots: dict[str, pg.PlotItem] = {}
         for i, (key, title, unit) in enumerate(PLOTS):
-            plot = self.canvas.addPlot(row=i // 2, col=i % 2, title=title)
+            axes = {"left": LogAxis("left")} if key in ("loss", "norms") else None
+            plot = self.canvas.addPlot(row=i // 2, col=i % 2, title=title, axisItems=axes)
             plot.setLabel("bottom", "step")
             plot.setLabel("left", unit)
             plot.showGrid(x=False, y=False)

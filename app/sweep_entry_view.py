@@ -8,6 +8,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
+from app.axes import LogAxis
 from app.colors import method_color
 from app.export import export_menu
 from core.analysis import sentence, stability_map
@@ -157,6 +158,7 @@ class SweepEntryView(QtWidgets.QFrame):
             col=0,
             colspan=4,
             title="threshold windows against batch size (shaded: one threshold for all)",
+            axisItems={"left": LogAxis("left")},
         )
         chart.setLogMode(x=True, y=True)
         sizes = sorted({w.batch_size for r in self.model.results.values() for w in r.windows})
@@ -202,11 +204,12 @@ class SweepEntryView(QtWidgets.QFrame):
             colspan=4,
             title=f"norm profile at step {profile.checkpoint_step}: "
             "expected batch-mean gradient norm, clean data",
+            axisItems={"left": LogAxis("left")},
         )
         plot.setLogMode(x=True, y=True)
         low, high = min(profile.batch_sizes), max(profile.batch_sizes)
         xs = np.geomspace(max(1, low / 2), min(high * 2, profile.population), 60)
-        ys = [math.sqrt(profile.predicted_sq(round(b))) for b in xs]
+        ys = [math.sqrt(profile.predicted_sq(float(b))) for b in xs]
         plot.addLegend(offset=(-10, 10), brush=(255, 255, 255, 210))
         plot.plot(xs, ys, pen=pg.mkPen("#000000", width=2), name="sqrt(|G|^2 + tr(Sigma)/B)")
         plot.plot(

@@ -37,8 +37,9 @@ class NormProfile:
     batch_sizes: tuple[int, ...]
     thresholds: dict[str, float] = field(default_factory=dict)  # batch-mean norm thresholds
 
-    def predicted_sq(self, batch: int) -> float:
-        """E|g_B|^2 for batches of `batch` rows drawn without replacement."""
+    def predicted_sq(self, batch: float) -> float:
+        """E|g_B|^2 for batches of `batch` rows drawn without replacement (a real `batch`
+        interpolates between batch sizes, for drawing)."""
         n = self.population
         fpc = (n - batch) / (n - 1) if n > 1 else 0.0
         return self.grad_sq + self.trace / batch * fpc

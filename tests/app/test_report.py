@@ -1,0 +1,129 @@
+"""`gradfence report`: one self-contained HTML file, checked with an HTML parser."""
+
+from __future__ import annotations
+
+import base64
+import html
+import os
+import shutil
+import subprocess
+import sys
+import tomllib
+from html.parser import HTMLParser
+from pathlib import Path
+
+from PySide6 import QtGui
+from pytestqt.qtbot import QtBot
+
+from app.main_window import MainWindow
+from core import __version__
+from core.notebook import load_notebook
+from core.scenario import parse_scenario
+from tests.app.conftest import trained
+from tests.conftest import REPO, SCENARIOS
+
+# Tags that load something from elsewhere, and attributes that name what they load.
+LOADING_TAGS = {"script", "link", "iframe", "object", "embed", "video", "audio", "source"}
+URL_ATTRIBUTES = {"src", "href", "srcset", "data", "poster", "action", "background"}
+
+
+class Collector(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[str] = []
+        self.images: list[str] = []
+        self.urls: list[str] = []
+        self.styles: list[str] = []
+        self.pre: list[str] = []
+        self._in: str | None = None
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append(tag)
+        for name, value in attrs:
+            if name == "src" and tag == "img":
+                self.images.append(value or "")
+            elif name in URL_ATTRIBUTES:
+                self.urls.append(value or "")
+            elif name == "style":
+                self.styles.append(value or "")
+        if tag in ("style", "pre"):
+            self._in = tag
+
+    def handle_endtag(self, tag: str) -> None:
+        self._in = None
+
+    def handle_data(self, data: str) -> None:
+        if self._in == "style":
+            self.styles.append(data)
+        elif self._in == "pre":
+            self.pre.append(data)
+
+
+def check_self_contained(text: str, images: int) -> Collector:
+    parsed = Collector()
+    parsed.feed(text)
+    parsed.close()
+    assert not LOADING_TAGS & set(parsed.tags)
+    assert parsed.urls == []  # no links, no external anything
+    assert all("url(" not in s and "@import" not in s for s in parsed.styles)
+    assert len(parsed.images) == images
+    for src in parsed.images:
+        prefix = "data:image/png;base64,"
+        assert src.startswith(prefix)
+        image = QtGui.QImage.fromData(base64.b64decode(src[len(prefix) :]), "PNG")
+        assert not image.isNull() and image.width() >= 800
+    return parsed
+
+
+def test_the_guided_notebook_reports_to_one_self_contained_file(tmp_path: Path) -> None:
+    for name in ("batch-size-coupling.notebook.toml", "batch-size-coupling.toml"):
+        shutil.copy(SCENARIOS / name, tmp_path / name)
+    notebook = tmp_path / "batch-size-coupling.notebook.toml"
+    out = tmp_path / "report.html"
+    command = [sys.executable, "-m", "app.cli", "report", str(notebook), "--out", str(out)]
+    env = {**os.environ, "QT_QPA_PLATFORM": "offscreen"}
+    first = subprocess.run(command, cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
+    assert first.returncode == 0, first.stderr
+    assert "3 to run, 0 cached" in first.stderr and "100%" in first.stderr
+    text = out.read_text(encoding="utf-8")
+    parsed = check_self_contained(text, images=3)  # two run entries and the sweep
+    entries = load_notebook(notebook).entries
+    for entry in entries:
+        assert html.escape(entry.title) in text
+    assert f"Gradfence {__version__}" in text
+    scenarios = [e.scenario for e in entries if e.scenario is not None]
+    shown = [parse_scenario(tomllib.loads(html.unescape(p))) for p in parsed.pre]
+    assert shown == scenarios  # each entry's scenario, as TOML that loads back to it
+    assert "outlier pass-through" in text and "window from" in text
+
+    out.unlink()
+    again = subprocess.run(command, cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
+    assert again.returncode == 0, again.stderr
+    assert "0 to run, 3 cached" in again.stderr  # results cached by scenario hash
+    check_self_contained(out.read_text(encoding="utf-8"), images=3)
+
+
+def test_file_export_report_writes_what_the_window_shows(
+    qtbot: QtBot, window: MainWindow, tmp_path: Path
+) -> None:
+    trained(qtbot, window)
+    out = tmp_path / "exported.html"
+    assert window.export_report(out)
+    text = out.read_text(encoding="utf-8")
+    parsed = check_self_contained(text, images=1)
+    assert "Quick blobs" in text and "<em>Markdown</em>" in text
+    assert len(parsed.pre) == 1
+
+
+def test_note_markdown_in_a_report_loads_nothing() -> None:
+    from app.report import markdown_html
+
+    text = "*A* <script>x()</script> ![chart](http://host/p.png) [docs](https://host/d)\n\n- **b**"
+    fragment = markdown_html(text)
+    assert "<em>A</em>" in fragment and "<li><strong>b</strong></li>" in fragment
+    assert (
+        "&lt;script&gt;" in fragment
+        and "[chart]" in fragment
+        and "docs (https://host/d)" in fragment
+    )
+    check_self_contained(f"<html><body>{fragment}</body></html>", images=0)
