@@ -109,6 +109,18 @@ def build_parser() -> argparse.ArgumentParser:
     shot.add_argument(
         "--entry", type=int, metavar="N", help="scroll entry N (from 1) to the top and select it"
     )
+    shot.add_argument(
+        "--collapse",
+        type=_numbers,
+        default=(),
+        metavar="N,M",
+        help="fold these entries (from 1) to their headers",
+    )
+    shot.add_argument(
+        "--present",
+        action="store_true",
+        help="picture the presentation view at --entry (default the first) instead",
+    )
 
     report = commands.add_parser(
         "report", help="write a notebook as one self-contained HTML file (runs what is not cached)"
@@ -154,7 +166,15 @@ def _dispatch(argv: list[str]) -> int:
 
         if not args.seconds > 0:
             raise GradfenceInputError(f"--seconds = {args.seconds:g} must be greater than 0.")
-        return shot(args.notebook, args.out, args.seconds, args.size, args.entry)
+        return shot(
+            args.notebook,
+            args.out,
+            args.seconds,
+            args.size,
+            args.entry,
+            args.present,
+            args.collapse,
+        )
     if args.command == "report":
         from app.report import write_report
 
@@ -373,6 +393,14 @@ def _threshold_text(rule: str, threshold: float) -> str:
 
 def _fmt(value: float) -> str:
     return "-" if math.isnan(value) else f"{value:.4g}"
+
+
+def _numbers(text: str) -> tuple[int, ...]:
+    """`2,4` as (2, 4), for --collapse."""
+    try:
+        return tuple(int(p) for p in text.split(",") if p.strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not entry numbers like 2,4") from None
 
 
 def _size(text: str) -> tuple[int, int]:

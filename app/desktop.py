@@ -67,18 +67,23 @@ def shot(
     seconds: float,
     size: tuple[int, int] = (1600, 1100),
     entry: int | None = None,
+    present: bool = False,
+    collapse: tuple[int, ...] = (),
 ) -> int:
     """Run a notebook's entries offscreen for `seconds` (or to the end); save the window.
 
     `entry` (1-based) scrolls that entry to the top and selects it; `size` is the window's.
+    With `present`, the picture is of the presentation view at that entry instead. Entries in
+    `collapse` (1-based) are folded to their headers.
     Results already cached beside the notebook are shown without training again.
     """
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     notebook = load_notebook(path)
-    if entry is not None and not 1 <= entry <= len(notebook.entries):
-        raise GradfenceInputError(
-            f"--entry {entry}: {path} has entries 1 to {len(notebook.entries)}."
-        )
+    for number, option in [(entry, "--entry"), *((n, "--collapse") for n in collapse)]:
+        if number is not None and not 1 <= number <= len(notebook.entries):
+            raise GradfenceInputError(
+                f"{option} {number}: {path} has entries 1 to {len(notebook.entries)}."
+            )
     app = _application()
     from PySide6 import QtWidgets
 
@@ -103,14 +108,26 @@ def shot(
         time.sleep(0.04)
     for view in window.run_views:
         view.refresh()
+    for number in collapse:
+        window.cards[number - 1].set_collapsed(True)
+    for _ in range(5):  # the column lays out again around the folded entries
+        app.processEvents()  # type: ignore[attr-defined]
+        time.sleep(0.02)
     if entry is not None:
         card = window.cards[entry - 1]
         window.select_card(card)
         app.processEvents()  # type: ignore[attr-defined]
         window.scroll_area.verticalScrollBar().setValue(card.y())
     app.processEvents()  # type: ignore[attr-defined]
+    target: QtWidgets.QWidget = window
+    if present:
+        target = window.present(full_screen=False)
+        target.resize(*size)
+        for _ in range(5):
+            app.processEvents()  # type: ignore[attr-defined]
+            time.sleep(0.02)
     out.parent.mkdir(parents=True, exist_ok=True)
-    saved = window.grab().save(str(out))
+    saved = target.grab().save(str(out))
     window.close()
     QtWidgets.QApplication.processEvents()
     if not saved:

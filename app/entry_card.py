@@ -105,3 +105,4 @@ class EntryCard(QtWidgets.QFrame):
     def detach(self) -> None:
         """Stop listening to the model (the card is being dropped for good)."""
         self.model.unsubscribe(self._on_model_changed)
+        self.body.detach()

@@ -13,7 +13,7 @@ import itertools
 import os
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
@@ -49,6 +49,9 @@ NOTEBOOK_FILTER = "Notebooks (*.notebook.toml)"
 
 ScenarioView = RunEntryView | SweepEntryView
 
+if TYPE_CHECKING:
+    from app.presentation import PresentationWindow
+
 
 def autosave_seconds() -> float:
     try:
@@ -71,6 +74,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._restored = False  # holds edits that no undo command describes (a restored copy)
         self._last_autosave = ""
         self._inspector_pages: list[ScenarioForm | TomlEditor] = []
+        self.presentation: PresentationWindow | None = None
         self.undo_stack = QtGui.QUndoStack(self)
         self.undo_stack.cleanChanged.connect(self._on_clean_changed)
         self.resize(1500, 1000)
@@ -189,6 +193,12 @@ class MainWindow(QtWidgets.QMainWindow):
             "Run &all", "Ctrl+Shift+R", self.run_all, "Train every run entry"
         )
         self.stop_action = action("&Stop", "Ctrl+.", self.stop_all, "Stop every running entry")
+        self.present_action = action(
+            "&Present",
+            "F5",
+            self.present,
+            "One entry at a time, full screen, large type; arrow keys move, Esc leaves",
+        )
         self.reset_action = action(
             "Re&set entry", "", self.reset_selected, "Forget the selected entry's results"
         )
@@ -225,6 +235,8 @@ class MainWindow(QtWidgets.QMainWindow):
         for a in (self.run_action, self.run_all_action, self.stop_action, self.reset_action):
             run_menu.addAction(a)
         view_menu = menu.addMenu("&View")
+        view_menu.addAction(self.present_action)
+        view_menu.addSeparator()
         for dock in self.findChildren(QtWidgets.QDockWidget):
             view_menu.addAction(dock.toggleViewAction())
         toolbar = self.addToolBar("Run")
@@ -234,6 +246,8 @@ class MainWindow(QtWidgets.QMainWindow):
         toolbar.addSeparator()
         for a in (self.add_note_action, self.add_preset_action):
             toolbar.addAction(a)
+        toolbar.addSeparator()
+        toolbar.addAction(self.present_action)
 
     # -- the document ------------------------------------------------------------------------
 
@@ -828,7 +842,31 @@ class MainWindow(QtWidgets.QMainWindow):
 
     # -- timers, closing ---------------------------------------------------------------------
 
+    def present(self, full_screen: bool = True) -> PresentationWindow:
+        """Open the presentation view at the selected entry."""
+        from app.presentation import PresentationWindow
+
+        if self.presentation is not None:
+            self.presentation.close()
+        start = self.cards.index(self.selected_card) if self.selected_card in self.cards else 0
+        shown = PresentationWindow(
+            self.cards, start, run_view=self.run_view, run_sweep=self.run_sweep, parent=self
+        )
+        shown.setAttribute(QtCore.Qt.WidgetAttribute.WA_DeleteOnClose)
+        shown.closed.connect(self._on_presentation_closed)
+        self.presentation = shown
+        if full_screen:
+            shown.showFullScreen()
+        else:
+            shown.show()
+        return shown
+
+    def _on_presentation_closed(self) -> None:
+        self.presentation = None
+
     def _on_redraw_tick(self) -> None:
+        if self.presentation is not None:
+            self.presentation.refresh_if_dirty()
         for view in self.run_views:
             view.refresh_if_dirty()
         for sweep in self.sweep_views:
@@ -848,6 +886,8 @@ class MainWindow(QtWidgets.QMainWindow):
         if not self.confirm_discard():
             event.ignore()
             return
+        if self.presentation is not None:
+            self.presentation.close()
         if not self.is_modified():
             clear_recovery(self.path)
         self.stop_all()

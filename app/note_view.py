@@ -19,16 +19,18 @@ class NoteView(QtWidgets.QFrame):
         model: NoteEntryModel,
         commit: Commit | None = None,
         parent: QtWidgets.QWidget | None = None,
+        editable: bool = True,
     ) -> None:
         super().__init__(parent)
         self.model = model
+        self.editable = editable
         self._commit = commit or _set_directly
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(6, 2, 6, 6)
         self.label = QtWidgets.QLabel()
         self.label.setTextFormat(QtCore.Qt.TextFormat.MarkdownText)
         self.label.setWordWrap(True)
-        self.label.setToolTip("Double-click to edit")
+        self.label.setToolTip("Double-click to edit" if editable else "")
         self.label.setTextInteractionFlags(QtCore.Qt.TextInteractionFlag.LinksAccessibleByMouse)
         self.label.setOpenExternalLinks(True)
         layout.addWidget(self.label)
@@ -66,6 +68,10 @@ class NoteView(QtWidgets.QFrame):
         model.subscribe(self._on_model_changed)
         self._render()
 
+    def detach(self) -> None:
+        """Stop listening to the model (before the view is dropped)."""
+        self.model.unsubscribe(self._on_model_changed)
+
     @property
     def editing(self) -> bool:
         return not self.editor.isHidden()
@@ -79,6 +85,8 @@ class NoteView(QtWidgets.QFrame):
             self._render()
 
     def start_editing(self) -> None:
+        if not self.editable:
+            return
         self.title_edit.setText(self.model.title)
         self.text_edit.setPlainText(self.model.text)
         self.label.hide()

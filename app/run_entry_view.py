@@ -158,6 +158,10 @@ class RunEntryView(QtWidgets.QFrame):
         if what != "data":
             self.refresh()
 
+    def detach(self) -> None:
+        """Stop listening to the model (before the view is dropped)."""
+        self.model.unsubscribe(self._on_model_changed)
+
     def refresh_if_dirty(self) -> None:
         if self._dirty:
             self.refresh()

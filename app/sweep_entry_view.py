@@ -20,6 +20,7 @@ class SweepEntryView(QtWidgets.QFrame):
     run_requested = QtCore.Signal(object)
     stop_requested = QtCore.Signal(object)
     selected = QtCore.Signal(object)
+    sweep_drawn = QtCore.Signal()  # the plots of a finished sweep were (re)built
 
     def __init__(self, model: SweepEntryModel, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
@@ -63,6 +64,10 @@ class SweepEntryView(QtWidgets.QFrame):
 
     def mousePressEvent(self, event: object) -> None:
         self.selected.emit(self)
+
+    def detach(self) -> None:
+        """Stop listening to the model (before the view is dropped)."""
+        self.model.unsubscribe(self._on_model_changed)
 
     def refresh_if_dirty(self) -> None:
         self._update_status()
@@ -165,7 +170,7 @@ class SweepEntryView(QtWidgets.QFrame):
         chart.getAxis("bottom").setTicks([[(math.log10(b), str(b)) for b in sizes]])
         chart.setLabel("bottom", "batch size")
         chart.setLabel("left", "threshold")
-        chart.addLegend(offset=(10, 10), brush=(255, 255, 255, 210))
+        chart.addLegend(offset=(10, -10), brush=(255, 255, 255, 210))  # low left: no window there
         for i, (label, result) in enumerate(self.model.results.items()):
             color = method_color(result.method)
             xs, ys = [], []
@@ -195,6 +200,7 @@ class SweepEntryView(QtWidgets.QFrame):
         if self.model.profile is not None:
             lines.append(profile_sentence(self.model.profile))
         self.sentences.setText("<br>".join(lines))
+        self.sweep_drawn.emit()
 
     def _draw_profile(self, profile: NormProfile, row: int) -> None:
         """Predicted batch-mean gradient norm against B, with the thresholds drawn across it."""
