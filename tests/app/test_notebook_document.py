@@ -212,3 +212,36 @@ def test_presets_are_browsed_added_and_saved_as_user_presets(
     listed = [p for p in list_presets() if p.path == path]
     assert listed and not listed[0].shipped and listed[0].name == "My blobs, tuned"
     assert not (shipped_dir() / path.name).exists()  # shipped presets are never written
+
+
+def test_recent_notebooks_new_and_collapse(
+    window: MainWindow, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from core.userdata import recent_notebooks
+
+    assert window.path is not None
+    other = tmp_path / "other.notebook.toml"
+    other.write_text('schema = 1\ntitle = "Other"\n[[entry]]\nkind = "note"\ntitle = "Hi"\n')
+    assert window.open_path(other)
+    assert window.notebook_title == "Other" and titles(window) == ["Hi"]
+    assert recent_notebooks()[0] == other.resolve()
+    window._fill_recent_menu()
+    assert window.recent_menu.actions()[0].text() == str(other.resolve())
+    bad = tmp_path / "bad.notebook.toml"
+    bad.write_text("schema = 1\n[[entry]]\nkind = 'chart'\n")
+    from PySide6 import QtWidgets
+
+    warnings: list[str] = []
+    monkeypatch.setattr(QtWidgets.QMessageBox, "warning", lambda *a: warnings.append(a[2]))
+    assert not window.open_path(bad)
+    assert "entry 1" in warnings[0] and "kind = 'chart'" in warnings[0]
+    assert window.notebook_title == "Other"  # a file that does not load changes nothing
+
+    window.new_notebook()
+    assert window.cards == [] and window.path is None and "not saved" in window.windowTitle()
+    card = window.add_note()
+    card.body.finish_editing()  # type: ignore[union-attr]
+    card.set_collapsed(True)
+    assert card.collapsed and card.body.isHidden()
+    card.set_collapsed(False)
+    assert not card.collapsed

@@ -13,13 +13,12 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 from PySide6 import QtGui
-from pytestqt.qtbot import QtBot
 
 from app.main_window import MainWindow
 from core import __version__
 from core.notebook import load_notebook
+from core.run_model import DONE
 from core.scenario import parse_scenario
-from tests.app.conftest import trained
 from tests.conftest import REPO, SCENARIOS
 
 # Tags that load something from elsewhere, and attributes that name what they load.
@@ -103,12 +102,13 @@ def test_the_guided_notebook_reports_to_one_self_contained_file(tmp_path: Path) 
     check_self_contained(out.read_text(encoding="utf-8"), images=3)
 
 
-def test_file_export_report_writes_what_the_window_shows(
-    qtbot: QtBot, window: MainWindow, tmp_path: Path
+def test_file_export_report_runs_what_is_missing_then_writes(
+    window: MainWindow, tmp_path: Path
 ) -> None:
-    trained(qtbot, window)
+    assert window.run_views[0].model.status != DONE
     out = tmp_path / "exported.html"
-    assert window.export_report(out)
+    assert window.export_report(out)  # trains the run entry first, with a progress dialog
+    assert window.run_views[0].model.status == DONE
     text = out.read_text(encoding="utf-8")
     parsed = check_self_contained(text, images=1)
     assert "Quick blobs" in text and "<em>Markdown</em>" in text
