@@ -57,7 +57,7 @@ def open_window(notebook: Notebook) -> MainWindow:
     window.show()
     if notebook.path is not None:
         add_recent(notebook.path)
-    window.offer_recovery()
+    window.offer_recovery(include_untitled=True)
     return window
 
 

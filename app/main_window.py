@@ -731,24 +731,31 @@ class MainWindow(QtWidgets.QMainWindow):
         self._last_autosave = text
         return written
 
-    def offer_recovery(self) -> bool:
-        """After a start or an open: offer the edits an earlier session left unsaved."""
-        found = find_recovery(self.path)
-        if found is None:
-            return False
-        if not self.ask_restore(found):
-            clear_recovery(self.path)
-            return False
-        where = self.path or Path.cwd() / "untitled.notebook.toml"
-        try:
-            notebook = loads_notebook(found.text, where, source="the recovery copy")
-        except GradfenceInputError as exc:
-            QtWidgets.QMessageBox.warning(self, "Cannot restore", str(exc))
-            return False
-        self.show_notebook(notebook, path=self.path)
-        self._restored = True
-        self._update_title()
-        return True
+    def offer_recovery(self, include_untitled: bool = False) -> bool:
+        """After a start or an open: offer the edits an earlier session left unsaved (with
+        `include_untitled`, those of a notebook that was never saved, too)."""
+        slots: list[Path | None] = [self.path]
+        if include_untitled and self.path is not None:
+            slots.append(None)
+        for slot in slots:
+            found = find_recovery(slot)
+            if found is None:
+                continue
+            if not self.ask_restore(found):
+                clear_recovery(slot)
+                continue
+            where = slot or Path.cwd() / "untitled.notebook.toml"
+            try:
+                notebook = loads_notebook(found.text, where, source="the recovery copy")
+            except GradfenceInputError as exc:
+                QtWidgets.QMessageBox.warning(self, "Cannot restore", str(exc))
+                continue
+            self.show_notebook(notebook, path=slot)
+            self.path = slot
+            self._restored = True
+            self._update_title()
+            return True
+        return False
 
     def ask_restore(self, found: Recovery) -> bool:
         when = time.strftime("%Y-%m-%d %H:%M", time.localtime(found.saved_at))

@@ -113,3 +113,29 @@ def test_declining_the_offer_drops_the_copy_and_the_file_is_untouched(
     assert len(second.cards) == 2 and path.read_text() == NOTEBOOK
     second.close()
     first._autosave_timer.stop()
+
+
+def test_a_never_saved_notebook_is_offered_back_at_the_next_start(
+    qtbot: QtBot, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = tmp_path / "nb.notebook.toml"
+    path.write_text(NOTEBOOK)
+    first = MainWindow(load_notebook(path))
+    qtbot.addWidget(first)
+    first.new_notebook()
+    card = first.add_note()
+    card.body.text_edit.setPlainText(EDIT)  # type: ignore[union-attr]
+    card.body.finish_editing()  # type: ignore[union-attr]
+    assert first.autosave() is not None and find_recovery(None) is not None
+    first.pool.shutdown()
+
+    offered: list[Recovery] = []
+    monkeypatch.setattr(MainWindow, "ask_restore", lambda self, r: offered.append(r) or True)
+    second = open_window(load_notebook(path))
+    qtbot.addWidget(second)
+    assert [r.notebook for r in offered] == [None]
+    assert second.path is None and [c.model.text for c in second.cards] == [EDIT]  # type: ignore[union-attr]
+    assert second.is_modified()
+    second.close()  # the conftest answers "discard": the copy goes
+    assert find_recovery(None) is None
+    first._autosave_timer.stop()
