@@ -88,17 +88,11 @@ def shot(
     from PySide6 import QtWidgets
 
     from app.main_window import MainWindow
-    from core.run_model import DONE
 
     window = MainWindow(notebook)
     window.resize(*size)
     window.show()
-    for view in window.run_views:
-        if view.model.status != DONE:
-            window.run_view(view)
-    for sweep in window.sweep_views:
-        if sweep.model.status != DONE:
-            window.run_sweep(sweep)
+    window.run_pending()
     deadline = time.monotonic() + seconds
     while time.monotonic() < deadline and not window.all_finished():
         app.processEvents()  # type: ignore[attr-defined]

@@ -28,7 +28,16 @@ from app.toml_editor import TomlEditor
 from app.workers import Task, WorkerPool
 from core import cache
 from core.errors import GradfenceInputError
-from core.notebook import Entry, Notebook, dumps_notebook, load_notebook, loads_notebook
+from core.fileio import write_text_atomic
+from core.notebook import (
+    NOTEBOOK_SUFFIX,
+    Entry,
+    Notebook,
+    dumps_notebook,
+    load_notebook,
+    loads_notebook,
+    save_notebook,
+)
 from core.presets import PresetInfo, save_user_preset
 from core.run_model import DONE, RUNNING, NoteEntryModel, RunEntryModel, ScenarioHolder
 from core.scenario import Scenario, dumps_scenario
@@ -45,7 +54,7 @@ from core.userdata import (
 REDRAW_MS = 33  # plots are redrawn at most about 30 times a second
 AUTOSAVE_VARIABLE = "GRADFENCE_AUTOSAVE_SECONDS"
 AUTOSAVE_SECONDS = 30.0
-NOTEBOOK_FILTER = "Notebooks (*.notebook.toml)"
+NOTEBOOK_FILTER = f"Notebooks (*{NOTEBOOK_SUFFIX})"
 
 ScenarioView = RunEntryView | SweepEntryView
 
@@ -560,18 +569,10 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def _store_cached(self, card: EntryCard) -> None:
         model = card.model
-        if self.path is None or isinstance(model, NoteEntryModel) or model.status != DONE:
-            return
-        folder = cache.cache_dir(self.path)
-        target = (
-            cache.run_path(folder, model.scenario)
-            if isinstance(model, RunEntryModel)
-            else cache.sweep_path(folder, model.scenario)
-        )
-        if target.exists():
+        if self.path is None or isinstance(model, NoteEntryModel):
             return
         try:
-            cache.store(folder, model)
+            cache.store(cache.cache_dir(self.path), model)
         except OSError as exc:  # a read-only folder costs the cache, nothing else
             self.statusBar().showMessage(f"Results not cached: {exc}", 8000)
 
@@ -646,17 +647,14 @@ class MainWindow(QtWidgets.QMainWindow):
         if not name:
             return False
         path = Path(name)
-        if not path.name.endswith(".notebook.toml"):
-            path = path.with_name(path.name.removesuffix(".toml") + ".notebook.toml")
+        if not path.name.endswith(NOTEBOOK_SUFFIX):
+            path = path.with_name(path.name.removesuffix(".toml") + NOTEBOOK_SUFFIX)
         return self.save_to(path)
 
     def save_to(self, path: Path) -> bool:
         """Write the notebook atomically to `path`; it becomes the document's file."""
-        from core.fileio import write_text_atomic
-
-        text = dumps_notebook(self.current_notebook(), path.resolve().parent)
         try:
-            write_text_atomic(path, text)
+            save_notebook(self.current_notebook(), path)
         except OSError as exc:
             QtWidgets.QMessageBox.warning(self, "Cannot save", f"{path}: {exc.strerror or exc}.")
             return False
@@ -675,7 +673,7 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def export_report(self, path: Path | None = None) -> bool:
         """Run what has no current results (with a progress dialog), then write the report."""
-        from app.report import overall_progress, report_html, start_pending
+        from app.report import overall_progress, report_html
 
         if path is None:
             default = self.path.with_suffix("").with_suffix(".html") if self.path else None
@@ -685,7 +683,7 @@ class MainWindow(QtWidgets.QMainWindow):
             if not name:
                 return False
             path = Path(name).with_suffix(".html")
-        todo = start_pending(self)
+        todo = self.run_pending()
         if todo:
             dialog = QtWidgets.QProgressDialog(
                 f"Running {len(todo)} entries for the report...", "Cancel", 0, 1000, self
@@ -701,8 +699,6 @@ class MainWindow(QtWidgets.QMainWindow):
                 dialog.setValue(int(overall_progress(todo) * 1000))
                 time.sleep(0.02)
             dialog.close()
-        from core.fileio import write_text_atomic
-
         try:
             write_text_atomic(path, report_html(self))
         except OSError as exc:
@@ -809,6 +805,17 @@ class MainWindow(QtWidgets.QMainWindow):
         self.pool.submit(Task(run_id, 0, text, [], profile=True), handle)
         for chunk in chunks:
             self.pool.submit(Task(run_id, chunk.batch_size, text, [], chunk=chunk), handle)
+
+    def run_pending(self) -> list[ScenarioView]:
+        """Start every entry without finished results of its current scenario; returns them."""
+        views: list[ScenarioView] = [*self.run_views, *self.sweep_views]
+        todo = [v for v in views if v.model.status != DONE or v.model.stale]
+        for view in todo:
+            if isinstance(view, RunEntryView):
+                self.run_view(view)
+            else:
+                self.run_sweep(view)
+        return todo
 
     def stop_sweep(self, view: SweepEntryView) -> None:
         if view.model.status == RUNNING:

@@ -206,22 +206,6 @@ def report_html(window: MainWindow) -> str:
     )
 
 
-def pending(window: MainWindow) -> list[RunEntryView | SweepEntryView]:
-    """Entries without finished results of their current scenario."""
-    views: list[RunEntryView | SweepEntryView] = [*window.run_views, *window.sweep_views]
-    return [v for v in views if v.model.status != DONE or v.model.stale]
-
-
-def start_pending(window: MainWindow) -> list[RunEntryView | SweepEntryView]:
-    todo = pending(window)
-    for view in todo:
-        if isinstance(view, RunEntryView):
-            window.run_view(view)
-        else:
-            window.run_sweep(view)
-    return todo
-
-
 def overall_progress(todo: list[RunEntryView | SweepEntryView]) -> float:
     if not todo:
         return 1.0
@@ -272,7 +256,7 @@ def write_report(
     window.show()
     report = progress or TerminalProgress()
     try:
-        todo = start_pending(window)
+        todo = window.run_pending()
         cached = len([*window.run_views, *window.sweep_views]) - len(todo)
         note = f"{len(todo)} to run, {cached} cached"
         while not window.all_finished():

@@ -20,12 +20,11 @@ import numpy as np
 from core import __version__
 from core.fan import fan_members
 from core.fileio import atomic_writer, write_text_atomic
+from core.notebook import NOTEBOOK_SUFFIX
 from core.profile import NormProfile
 from core.run_model import DONE, RunEntryModel, StackData
 from core.scenario import Scenario
 from core.sweep_model import SweepEntryModel
-
-NOTEBOOK_SUFFIX = ".notebook.toml"
 
 
 def cache_dir(notebook_path: Path) -> Path:
@@ -35,10 +34,7 @@ def cache_dir(notebook_path: Path) -> Path:
 
 
 def _identity(scenario: Scenario) -> str:
-    content = scenario.to_dict()
-    content.pop("name", None)
-    content.pop("notes", None)
-    return json.dumps({"version": __version__, "scenario": content}, sort_keys=True)
+    return json.dumps({"version": __version__, "scenario": scenario.content()}, sort_keys=True)
 
 
 def run_path(folder: Path, scenario: Scenario) -> Path:
@@ -117,30 +113,26 @@ def load_sweep(folder: Path, model: SweepEntryModel) -> bool:
             return False
         rows: list[dict[str, Any]] = document["rows"]
         raw = document.get("profile")
-        profile = _profile(raw) if raw is not None else None
+        profile = NormProfile.from_json(raw) if raw is not None else None
     except (OSError, KeyError, TypeError, ValueError):
         return False
     model.restore(rows, profile)
     return True
 
 
-def _profile(raw: dict[str, Any]) -> NormProfile:
-    return NormProfile(
-        checkpoint_step=int(raw["checkpoint_step"]),
-        examples=int(raw["examples"]),
-        population=int(raw["population"]),
-        grad_sq=float(raw["grad_sq"]),
-        trace=float(raw["trace"]),
-        outlier_norm=None if raw["outlier_norm"] is None else float(raw["outlier_norm"]),
-        batch_sizes=tuple(int(b) for b in raw["batch_sizes"]),
-        thresholds={str(k): float(v) for k, v in raw["thresholds"].items()},
-    )
+def path_for(folder: Path, model: RunEntryModel | SweepEntryModel) -> Path:
+    if isinstance(model, RunEntryModel):
+        return run_path(folder, model.scenario)
+    return sweep_path(folder, model.scenario)
 
 
 def store(folder: Path, model: RunEntryModel | SweepEntryModel) -> Path | None:
-    """Cache a finished entry; None when it has nothing finished to keep."""
+    """Cache a finished entry unless it is cached already (the same hash, the same results);
+    None when it has nothing finished to keep."""
     if model.status != DONE or model.stale:
         return None
+    if path_for(folder, model).exists():
+        return path_for(folder, model)
     if isinstance(model, RunEntryModel):
         return store_run(folder, model)
     return store_sweep(folder, model)

@@ -23,6 +23,7 @@ from core.fields import describe
 from core.fileio import write_text_atomic
 from core.scenario import SCHEMA, Scenario, parse_scenario, parse_toml, read_text
 
+NOTEBOOK_SUFFIX = ".notebook.toml"
 ENTRY_KINDS = ("note", "run", "sweep")
 ENTRY_KEYS = {
     "note": ("kind", "title", "text"),
@@ -158,7 +159,7 @@ def _merge(base: Mapping[str, Any], top: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def is_notebook(path: Path) -> bool:
-    return path.name.endswith(".notebook.toml")
+    return path.name.endswith(NOTEBOOK_SUFFIX)
 
 
 def entry_table(entry: Entry, folder: Path) -> dict[str, Any]:
@@ -184,9 +185,6 @@ def dumps_notebook(notebook: Notebook, folder: Path) -> str:
     return tomli_w.dumps(document, multiline_strings=True)
 
 
-def save_notebook(notebook: Notebook, path: Path) -> Notebook:
-    """Write atomically (the previous file stays whole until the new one is complete); returns
-    the notebook as it now reads from `path`."""
-    path = Path(path)
+def save_notebook(notebook: Notebook, path: Path) -> None:
+    """Write atomically: the previous file stays whole until the new one is complete."""
     write_text_atomic(path, dumps_notebook(notebook, path.resolve().parent))
-    return load_notebook(path)

@@ -63,6 +63,20 @@ class NormProfile:
         out["hiding_batch"] = self.hiding_batch
         return out
 
+    @classmethod
+    def from_json(cls, raw: dict[str, Any]) -> NormProfile:
+        """The profile `as_json` wrote (its derived keys are ignored)."""
+        return cls(
+            checkpoint_step=int(raw["checkpoint_step"]),
+            examples=int(raw["examples"]),
+            population=int(raw["population"]),
+            grad_sq=float(raw["grad_sq"]),
+            trace=float(raw["trace"]),
+            outlier_norm=None if raw["outlier_norm"] is None else float(raw["outlier_norm"]),
+            batch_sizes=tuple(int(b) for b in raw["batch_sizes"]),
+            thresholds={str(k): float(v) for k, v in raw["thresholds"].items()},
+        )
+
 
 def profile_sentence(profile: NormProfile) -> str:
     """The profile in one sentence: the noise, and where one outlier hides in it."""

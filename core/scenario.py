@@ -288,12 +288,16 @@ class Scenario:
         resolved: dict[str, Any] = _drop_none(dataclasses.asdict(self))
         return resolved
 
-    def hash(self) -> str:
-        """A stable hash of everything that changes results (name and notes do not)."""
+    def content(self) -> dict[str, Any]:
+        """Everything that changes results: the resolved scenario without name and notes."""
         content = self.to_dict()
         content.pop("name", None)
         content.pop("notes", None)
-        text = json.dumps(content, sort_keys=True, separators=(",", ":"))
+        return content
+
+    def hash(self) -> str:
+        """A stable hash of `content()`."""
+        text = json.dumps(self.content(), sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(text.encode()).hexdigest()[:16]
 
     def with_overrides(self, overrides: Mapping[str, Any], source: str = "--set") -> Scenario:
