@@ -26,7 +26,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python bench/engine.py
-	$(BIN)/python bench/sweep.py
+	$(BIN)/python bench/maps.py
 	$(BIN)/python bench/ui.py
 
 clean:

@@ -1,23 +1,21 @@
-"""The `gradfence` command line. Exit codes: 0 success, 2 bad input, 1 internal failure."""
+"""The `gradfence` command line. Exit codes: 0 success, 2 bad input, 1 internal failure.
+
+Commands: (none) or `open STUDY` the desktop app; `train PRESET` one preset's members; `map
+PRESET` the batch size x threshold x seed map; `handout STUDY` one HTML file; `shot STUDY` a
+picture of the window; `check FILE...`; `presets`. The commands import what they need when they
+run, so that `gradfence --help` and the window start fast.
+"""
 
 from __future__ import annotations
 
 import argparse
-import math
 import sys
-import textwrap
-import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, TextIO
 
-import numpy as np
-
+from core import __version__
 from core.errors import GradfenceInputError
-
-if TYPE_CHECKING:  # the commands import their modules lazily, to start fast
-    from core.results import RunResult
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
 
@@ -44,60 +42,78 @@ def build_parser() -> argparse.ArgumentParser:
     parser = InputArgumentParser(
         prog="gradfence",
         description="Measure how gradient clipping methods respond to outliers, batch size and "
-        "threshold on small synthetic problems.",
+        "threshold on small synthetic problems. With no command, opens the desktop app on the "
+        "demo study.",
     )
+    parser.add_argument("--version", action="version", version=f"gradfence {__version__}")
     commands = parser.add_subparsers(
         dest="command", metavar="COMMAND", parser_class=InputArgumentParser
     )
 
-    run = commands.add_parser("run", help="train a preset's members and report the results")
-    run.add_argument("preset", type=Path, help="a scenario preset (.toml)")
-    add_overrides(run)
-    run.add_argument("--out", type=Path, help="folder for scenario.toml, metrics.csv, summary.json")
-    run.add_argument(
+    train = commands.add_parser(
+        "train", help="train a preset's members (one per [[clip]] table) and show the results"
+    )
+    train.add_argument("preset", help="a preset file (.toml), or a name `gradfence presets` lists")
+    add_overrides(train)
+    train.add_argument(
+        "--out", type=Path, help="folder for scenario.toml, metrics.csv and members.json"
+    )
+    train.add_argument(
         "--trace",
         action="store_true",
-        help="also write trace.npz (batches, initial weights, example norms) and data.npz",
+        help="with --out, also write trace.npz (batches, initial weights, example norms) and "
+        "data.npz",
     )
 
-    sweep = commands.add_parser(
-        "sweep", help="train batch size x threshold x seed grids and find the threshold windows"
+    mapping = commands.add_parser(
+        "map", help="train a batch size x threshold x seed map and find the threshold windows"
     )
-    sweep.add_argument("preset", type=Path, help="a scenario preset (.toml)")
-    add_overrides(sweep)
-    sweep.add_argument(
+    mapping.add_argument(
+        "preset", help="a preset file (.toml), or a name `gradfence presets` lists"
+    )
+    add_overrides(mapping)
+    mapping.add_argument(
         "--out",
         type=Path,
-        default=Path("sweep-out"),
-        help="folder for sweep.csv, windows.json, profile.json (default: sweep-out)",
+        default=None,
+        help="folder for map.csv, windows.json, profile.json (default: maps/NAME, one folder "
+        "per preset)",
     )
-    sweep.add_argument(
-        "--jobs", type=int, default=None, help="worker processes (default: the number of cores)"
+    mapping.add_argument(
+        "--jobs",
+        type=int,
+        default=None,
+        help="processes training at once (default and at most: the cores the memory allows)",
     )
-    sweep.add_argument(
+    mapping.add_argument(
         "--resume",
         action="store_true",
-        help="continue a stopped sweep in --out without recomputing finished points",
+        help="continue a stopped map in --out without training its finished members again",
     )
-    sweep.add_argument(
+    mapping.add_argument(
+        "--fresh",
+        action="store_true",
+        help="start the map in --out over, dropping what is there",
+    )
+    mapping.add_argument(
         "--tolerance",
         type=float,
         default=None,
-        help="a threshold is in the window when its loss is within (1 + tolerance) "
-        "of the best at that batch size (default: the preset's sweep.tolerance)",
+        help="a threshold is in the window when its loss above the task's floor is within "
+        "(1 + tolerance) of the best at that batch size (default: the preset's map.tolerance)",
     )
 
-    open_cmd = commands.add_parser("open", help="open a notebook in the desktop app")
-    open_cmd.add_argument("notebook", type=Path, help="a .notebook.toml file")
+    open_cmd = commands.add_parser("open", help="open a study in the desktop app")
+    open_cmd.add_argument("study", type=Path, help="a .study.toml file")
 
-    shot = commands.add_parser("shot", help="run a notebook offscreen and save the window as PNG")
-    shot.add_argument("notebook", type=Path, help="a .notebook.toml file")
+    shot = commands.add_parser("shot", help="train a study offscreen and save the window as PNG")
+    shot.add_argument("study", type=Path, help="a .study.toml file")
     shot.add_argument("--out", type=Path, required=True, help="the PNG to write")
     shot.add_argument(
         "--seconds",
         type=float,
         default=60.0,
-        help="run the entries this long at most (default 60; they may finish sooner)",
+        help="train the entries this long at most (default 60; they may finish sooner)",
     )
     shot.add_argument(
         "--size",
@@ -122,16 +138,16 @@ def build_parser() -> argparse.ArgumentParser:
         help="picture the presentation view at --entry (default the first) instead",
     )
 
-    report = commands.add_parser(
-        "report", help="write a notebook as one self-contained HTML file (runs what is not cached)"
+    handout = commands.add_parser(
+        "handout", help="write a study as one self-contained HTML file (trains what is not cached)"
     )
-    report.add_argument("notebook", type=Path, help="a .notebook.toml file")
-    report.add_argument("--out", type=Path, required=True, help="the HTML file to write")
+    handout.add_argument("study", type=Path, help="a .study.toml file")
+    handout.add_argument("--out", type=Path, required=True, help="the HTML file to write")
 
-    check = commands.add_parser("check", help="validate presets and notebooks")
+    check = commands.add_parser("check", help="validate presets and studies")
     check.add_argument("files", type=Path, nargs="+", metavar="FILE")
 
-    commands.add_parser("presets", help="list shipped and user presets")
+    commands.add_parser("presets", help="list the shipped and your own presets, with their files")
     return parser
 
 
@@ -153,246 +169,47 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _dispatch(argv: list[str]) -> int:
     args = build_parser().parse_args(argv)
-    if args.command is None:
+    if args.command is None or args.command == "open":
         from app.desktop import launch
 
-        return launch()
-    if args.command == "open":
-        from app.desktop import launch
-
-        return launch(args.notebook)
+        return launch(getattr(args, "study", None))
     if args.command == "shot":
-        from app.desktop import shot
+        from app.shot import shot
+        from core.fileio import check_out_file
 
         if not args.seconds > 0:
             raise GradfenceInputError(f"--seconds = {args.seconds:g} must be greater than 0.")
-        return shot(
-            args.notebook,
-            args.out,
-            args.seconds,
-            args.size,
-            args.entry,
-            args.present,
-            args.collapse,
+        check_out_file(args.out, (".png",), "PNG")
+        line = shot(
+            args.study, args.out, args.seconds, args.size, args.entry, args.present, args.collapse
         )
-    if args.command == "report":
-        from app.report import write_report
+        print(line)
+        return EXIT_OK
+    if args.command == "handout":
+        from core.fileio import check_out_file
 
-        if args.out.suffix.lower() not in (".html", ".htm"):
-            raise GradfenceInputError(f"--out {args.out}: a report is an .html file.")
-        count, failed = write_report(args.notebook, args.out)
+        check_out_file(args.out, (".html", ".htm"), "handout (HTML)")
+        from app.handout import write_handout
+
+        count, failed = write_handout(args.study, args.out)
         detail = f"; failed: {', '.join(failed)}" if failed else ""
         print(f"wrote {args.out} ({count} entries{detail})")
         return EXIT_OK if not failed else EXIT_INTERNAL
-    if args.command == "run":
-        return command_run(args.preset, args.overrides, args.out, args.trace)
-    if args.command == "sweep":
-        return command_sweep(
-            args.preset, args.overrides, args.out, args.jobs, args.resume, args.tolerance
-        )
+    if args.command == "train":
+        from app.cli_commands import command_train
+
+        return command_train(args.preset, args.overrides, args.out, args.trace)
+    if args.command == "map":
+        from app.cli_commands import command_map
+
+        return command_map(args)
     if args.command == "check":
+        from app.cli_commands import command_check
+
         return command_check(args.files)
+    from app.cli_commands import command_presets
+
     return command_presets()
-
-
-def command_run(preset: Path, overrides: list[str], out: Path | None, trace: bool) -> int:
-    from core.engine import Engine, run_members
-    from core.results import collect, write_run
-    from core.scenario import load_scenario, parse_override
-
-    scenario = load_scenario(preset)
-    if overrides:
-        scenario = scenario.with_overrides(dict(parse_override(o) for o in overrides))
-    engine = Engine(scenario, run_members(scenario), trace=trace)
-    progress = Progress(scenario.train.steps, sys.stderr)
-    result = collect(engine, lambda record: progress.update(record.step))
-    progress.close()
-    print(format_table(result))
-    if out is not None:
-        written = write_run(result, out, trace)
-        print(f"wrote {', '.join(p.name for p in written)} to {out}")
-    return EXIT_OK
-
-
-def command_sweep(
-    preset: Path,
-    overrides: list[str],
-    out: Path,
-    jobs: int | None,
-    resume: bool,
-    tolerance: float | None,
-) -> int:
-    import json
-
-    from core.analysis import analyse, sentence, window_line, windows_json
-    from core.scenario import load_scenario, parse_override
-    from core.sweep import plan, run_sweep
-
-    if jobs is not None and jobs < 1:
-        raise GradfenceInputError(f"--jobs = {jobs} must be at least 1.")
-    scenario = load_scenario(preset)
-    if overrides:
-        scenario = scenario.with_overrides(dict(parse_override(o) for o in overrides))
-    if tolerance is None:
-        tolerance = scenario.sweep.tolerance
-    elif not tolerance > 0:
-        raise GradfenceInputError(f"--tolerance = {tolerance:g} must be greater than 0.")
-    chunks = plan(scenario)
-    points = sum(len(c.points) for c in chunks)
-    print(
-        f"{scenario.name}: {points} points in {len(chunks)} stacks, batch sizes "
-        f"{', '.join(map(str, scenario.sweep.batch_sizes))}",
-        file=sys.stderr,
-    )
-    progress = Progress(len(chunks), sys.stderr, label="stacks")
-    try:
-        rows = run_sweep(scenario, out, jobs, resume, lambda p: progress.update(p.done))
-    except KeyboardInterrupt:
-        progress.close()
-        print(
-            f"stopped; finished stacks are in {out / 'sweep.csv'}: continue with --resume.",
-            file=sys.stderr,
-        )
-        return EXIT_INTERNAL
-    progress.close()
-    results = analyse(rows, tolerance)
-    from core.fileio import write_text_atomic
-    from core.profile import norm_profile, profile_sentence, suggest_thresholds
-
-    write_text_atomic(
-        out / "windows.json", json.dumps(windows_json(results, tolerance), indent=2) + "\n"
-    )
-    profile = norm_profile(scenario)
-    suggestions = suggest_thresholds(scenario)
-    profile_json = profile.as_json()
-    profile_json["suggestions"] = [s.__dict__ for s in suggestions]
-    write_text_atomic(out / "profile.json", json.dumps(profile_json, indent=2) + "\n")
-    for w in results.values():
-        print(sentence(w))
-        print(window_line(w))
-    print(profile_sentence(profile))
-    for s in suggestions:
-        where = f" at batch size {s.batch_size}" if s.batch_size else ""
-        print(
-            f"suggested {s.label} threshold: {s.threshold:.3g}, the {s.percentile:g}th percentile "
-            f"of unclipped warm-up norms{where} (clips {s.clip_rate:.0%} of them)."
-        )
-    print(f"wrote sweep.csv, windows.json and profile.json to {out}")
-    return EXIT_OK
-
-
-def command_check(files: list[Path]) -> int:
-    from core.notebook import is_notebook, load_notebook
-    from core.scenario import load_scenario
-
-    failures = 0
-    for path in files:
-        try:
-            if is_notebook(path):
-                notebook = load_notebook(path)
-                print(f"ok: {path} (notebook {notebook.title!r}, {len(notebook.entries)} entries)")
-                continue
-            scenario = load_scenario(path)
-        except GradfenceInputError as exc:
-            failures += 1
-            print(f"error: {exc}", file=sys.stderr)
-            continue
-        print(f"ok: {path} ({scenario.name}, {len(scenario.clip)} clipping setups)")
-    return EXIT_INPUT if failures else EXIT_OK
-
-
-def command_presets() -> int:
-    from core.presets import list_presets
-
-    for info in list_presets():
-        origin = "shipped" if info.shipped else "user"
-        if info.scenario is None:
-            print(f"{info.path.name}  [{origin}, broken]\n    {info.error}")
-            continue
-        print(f"{info.path.name}  [{origin}]  {info.name}")
-        if info.scenario.notes:
-            lines = textwrap.wrap(
-                info.scenario.notes, 96, max_lines=2, placeholder=" ...", break_on_hyphens=False
-            )
-            print("\n".join(f"    {line}" for line in lines))
-    return EXIT_OK
-
-
-class Progress:
-    """A one-line progress bar on a terminal; silent when the stream is not a terminal."""
-
-    def __init__(self, total: int, stream: TextIO, label: str = "step") -> None:
-        self.total, self.stream, self.label = total, stream, label
-        self.enabled = stream.isatty()
-        self.start = time.monotonic()
-
-    def update(self, done: int) -> None:
-        if not self.enabled:
-            return
-        elapsed = time.monotonic() - self.start
-        left = elapsed / done * (self.total - done) if done else math.nan
-        width = 30
-        filled = int(width * done / self.total)
-        bar = "#" * filled + "." * (width - filled)
-        eta = f"{left:5.1f} s left" if math.isfinite(left) else ""
-        self.stream.write(f"\r[{bar}] {self.label} {done}/{self.total}  {eta}")
-        self.stream.flush()
-
-    def close(self) -> None:
-        if self.enabled:
-            self.stream.write("\n")
-            self.stream.flush()
-
-
-def format_table(result: RunResult) -> str:
-    """Final results per member: the loss, the task metric, the mean clipped share."""
-    metric = "val_accuracy" if "val_accuracy" in result.metrics else "val_r2"
-    rows = [
-        (
-            "member",
-            "method",
-            "threshold",
-            "val loss",
-            metric.replace("val_", ""),
-            "clipped",
-            "diverged",
-        )
-    ]
-    share = result.metric("clipped_share")
-    counts = (~np.isnan(share)).sum(axis=0)
-    shares = np.where(counts > 0, np.nansum(share, axis=0) / np.maximum(counts, 1), np.nan)
-    for i, m in enumerate(result.members):
-        diverged = result.diverged_at[i]
-        rows.append(
-            (
-                m.name,
-                m.method,
-                _threshold_text(m.clip.rule, m.threshold),
-                _fmt(result.final("val_loss")[i]),
-                _fmt(result.final(metric)[i]),
-                f"{shares[i]:.0%}" if not math.isnan(shares[i]) else "-",
-                f"step {diverged}" if diverged is not None else "no",
-            )
-        )
-    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
-    lines = [
-        "  ".join(cell.ljust(w) for cell, w in zip(r, widths, strict=True)).rstrip() for r in rows
-    ]
-    lines.insert(1, "  ".join("-" * w for w in widths))
-    return (
-        f"{result.scenario.name}: batch size {result.batch_size}, {int(result.steps[-1])} steps\n"
-        + "\n".join(lines)
-    )
-
-
-def _threshold_text(rule: str, threshold: float) -> str:
-    if rule != "fixed":
-        return rule  # adaptive: the threshold moves with the watched norm
-    return "-" if math.isnan(threshold) else f"{threshold:g}"
-
-
-def _fmt(value: float) -> str:
-    return "-" if math.isnan(value) else f"{value:.4g}"
 
 
 def _numbers(text: str) -> tuple[int, ...]:

@@ -1,31 +1,38 @@
-"""One colour per clipping method, the same in every view.
+"""Colours shared by every view: one per method (from core/methods.py), one per entry kind.
 
-The hues are the Okabe-Ito set, chosen to stay apart for the common forms of colour blindness;
-a second [[clip]] table of the same method gets the same hue with a dashed line.
+Method hues are the Okabe-Ito set, chosen to stay apart for the common forms of colour
+blindness; a second [[clip]] table of the same method gets the same hue with another line style.
 """
 
 from __future__ import annotations
 
 from PySide6 import QtCore
 
-METHOD_COLORS = {
-    "none": "#000000",
-    "global-norm": "#0072B2",
-    "example-norm": "#D55E00",
-    "unit-agc": "#009E73",
-    "example-agc": "#CC79A7",
-    "microbatch-norm": "#E69F00",
-    "tensor-norm": "#56B4E9",
-    "value": "#7F7F7F",
-}
+from core.methods import color
+
 CLEAN_COLOR = "#56B4E9"
 OUTLIER_COLOR = "#D55E00"
+FADED_ALPHA = 70  # of 255: the curves of an earlier scenario, kept while new ones arrive
 LINE_STYLES = (
     QtCore.Qt.PenStyle.SolidLine,
-    QtCore.Qt.PenStyle.DashLine,
+    QtCore.Qt.PenStyle.DashDotLine,
     QtCore.Qt.PenStyle.DotLine,
 )
+# The margin down an entry's left side says what kind of entry it is.
+KIND_COLORS = {
+    "note": "#B8A98A",
+    "fan": "#2F7F8F",
+    "map": "#6E4C9A",
+    "log": "#9A6B2F",
+}
+INK = "#1D1D1D"
+MUTED = "#5C5C5C"
+WARN = "#A33A1E"
 
 
 def method_color(method: str) -> str:
-    return METHOD_COLORS.get(method, "#000000")
+    return color(method)
+
+
+def kind_color(kind: str) -> str:
+    return KIND_COLORS.get(kind, "#888888")

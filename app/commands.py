@@ -1,64 +1,60 @@
-"""Every edit of a notebook as an undoable command: entries added, deleted and moved; scenarios
-changed in the form or the TOML tab; notes and titles rewritten."""
+"""Every edit of a study as an undoable command: entries added, deleted and moved; scenarios
+changed in the form or the TOML tab; notes and titles rewritten.
+
+Commands change the study and its entry models, never a widget: the window, the inspector and
+every view follow the models they listen to, so undo and redo replay exactly.
+"""
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 from PySide6 import QtGui
 
-from core.run_model import NoteEntryModel
+from core.entry_model import EntryModel, NoteModel, TrainedEntry
 from core.scenario import Scenario
-
-if TYPE_CHECKING:
-    from app.entry_card import EntryCard
-    from app.main_window import MainWindow
-    from core.run_model import ScenarioHolder
+from core.study import Study
 
 
 class InsertEntry(QtGui.QUndoCommand):
-    def __init__(self, window: MainWindow, card: EntryCard, index: int) -> None:
-        super().__init__(f'add {card.kind} "{card.model.title}"')
-        self.window, self.card, self.index = window, card, index
+    def __init__(self, study: Study, entry: EntryModel, index: int) -> None:
+        super().__init__(f'add {entry.kind} "{entry.title}"')
+        self.study, self.entry, self.index = study, entry, index
 
     def redo(self) -> None:
-        self.window.insert_card(self.card, self.index)
+        self.study.insert(self.index, self.entry)
 
     def undo(self) -> None:
-        self.window.take_card(self.card)
+        self.study.remove(self.entry)
 
 
 class DeleteEntry(QtGui.QUndoCommand):
-    def __init__(self, window: MainWindow, card: EntryCard) -> None:
-        super().__init__(f'delete "{card.model.title}"')
-        self.window, self.card = window, card
-        self.index = window.cards.index(card)
+    def __init__(self, study: Study, entry: EntryModel) -> None:
+        super().__init__(f'delete "{entry.title}"')
+        self.study, self.entry = study, entry
+        self.index = study.index(entry)
 
     def redo(self) -> None:
-        self.window.take_card(self.card)
+        self.study.remove(self.entry)
 
     def undo(self) -> None:
-        self.window.insert_card(self.card, self.index)
+        self.study.insert(self.index, self.entry)
 
 
 class MoveEntry(QtGui.QUndoCommand):
-    def __init__(self, window: MainWindow, card: EntryCard, delta: int) -> None:
-        super().__init__(f'move "{card.model.title}" {"down" if delta > 0 else "up"}')
-        self.window, self.card = window, card
-        self.start = window.cards.index(card)
-        self.end = max(0, min(len(window.cards) - 1, self.start + delta))
+    def __init__(self, study: Study, entry: EntryModel, delta: int) -> None:
+        super().__init__(f'move "{entry.title}" {"down" if delta > 0 else "up"}')
+        self.study, self.entry = study, entry
+        self.start = study.index(entry)
+        self.end = max(0, min(len(study) - 1, self.start + delta))
 
     def redo(self) -> None:
-        self.window.take_card(self.card)
-        self.window.insert_card(self.card, self.end)
+        self.study.move(self.entry, self.end)
 
     def undo(self) -> None:
-        self.window.take_card(self.card)
-        self.window.insert_card(self.card, self.start)
+        self.study.move(self.entry, self.start)
 
 
 class SetScenario(QtGui.QUndoCommand):
-    def __init__(self, model: ScenarioHolder, scenario: Scenario) -> None:
+    def __init__(self, model: TrainedEntry, scenario: Scenario) -> None:
         super().__init__(f'edit the scenario of "{model.title}"')
         self.model, self.old, self.new = model, model.scenario, scenario
 
@@ -70,7 +66,7 @@ class SetScenario(QtGui.QUndoCommand):
 
 
 class EditNote(QtGui.QUndoCommand):
-    def __init__(self, model: NoteEntryModel, title: str, text: str) -> None:
+    def __init__(self, model: NoteModel, title: str, text: str) -> None:
         super().__init__(f'edit note "{model.title}"')
         self.model = model
         self.old, self.new = (model.title, model.text), (title, text)
@@ -87,7 +83,7 @@ class EditNote(QtGui.QUndoCommand):
 
 
 class Rename(QtGui.QUndoCommand):
-    def __init__(self, model: ScenarioHolder | NoteEntryModel, title: str) -> None:
+    def __init__(self, model: EntryModel, title: str) -> None:
         super().__init__(f'rename "{model.title}"')
         self.model, self.old, self.new = model, model.title, title
 
@@ -96,3 +92,15 @@ class Rename(QtGui.QUndoCommand):
 
     def undo(self) -> None:
         self.model.set_title(self.old)
+
+
+class RenameStudy(QtGui.QUndoCommand):
+    def __init__(self, study: Study, title: str) -> None:
+        super().__init__(f'rename the study "{study.title}"')
+        self.study, self.old, self.new = study, study.title, title
+
+    def redo(self) -> None:
+        self.study.set_title(self.new)
+
+    def undo(self) -> None:
+        self.study.set_title(self.old)

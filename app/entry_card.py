@@ -1,20 +1,16 @@
-"""EntryCard: the frame around one notebook entry, with its header (collapse, title, move,
-delete) above the entry's own view."""
+"""EntryCard: the frame around one entry of a study: a margin coloured by the entry's kind, a
+header with its title and headline figure (a map's verdict, a fan's best member), and buttons
+to fold, move and delete it, over the entry's own view."""
 
 from __future__ import annotations
 
 from PySide6 import QtCore, QtWidgets
 
-from app.note_view import NoteView
-from app.run_entry_view import RunEntryView
-from app.sweep_entry_view import SweepEntryView
-from core.run_model import NoteEntryModel, RunEntryModel
-from core.sweep_model import SweepEntryModel
+from app.colors import MUTED, kind_color
+from app.views import EntryView
+from core.entry_model import EntryModel
 
-EntryBody = NoteView | RunEntryView | SweepEntryView
-EntryModel = NoteEntryModel | RunEntryModel | SweepEntryModel
-
-KIND_NAMES = {NoteView: "note", RunEntryView: "run", SweepEntryView: "sweep"}
+KIND_WORDS = {"note": "Note", "fan": "Fan", "map": "Map", "log": "Log"}
 
 
 class EntryCard(QtWidgets.QFrame):
@@ -22,39 +18,43 @@ class EntryCard(QtWidgets.QFrame):
     delete_requested = QtCore.Signal(object)
     selected = QtCore.Signal(object)
 
-    def __init__(self, body: EntryBody, parent: QtWidgets.QWidget | None = None) -> None:
+    def __init__(self, body: EntryView, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
         self.body = body
         self.model: EntryModel = body.model
-        self.kind = KIND_NAMES[type(body)]
+        self.kind = self.model.kind
+        color = kind_color(self.kind)
         self.setObjectName("entry-card")
-        self.setFrameShape(QtWidgets.QFrame.Shape.Box)
-        self.setStyleSheet("#entry-card { border: 1px solid #C8C8C8; border-radius: 4px; }")
+        self.setStyleSheet(
+            f"#entry-card {{ border: none; border-left: 6px solid {color}; "
+            "background: #FFFFFF; margin: 2px 0px; }"
+        )
         self.setSizePolicy(
             QtWidgets.QSizePolicy.Policy.Ignored, QtWidgets.QSizePolicy.Policy.Maximum
         )
         layout = QtWidgets.QVBoxLayout(self)
-        layout.setContentsMargins(4, 4, 4, 4)
+        layout.setContentsMargins(10, 4, 4, 6)
         layout.setSpacing(2)
         header = QtWidgets.QHBoxLayout()
         self.toggle = QtWidgets.QToolButton()
         self.toggle.setArrowType(QtCore.Qt.ArrowType.DownArrow)
         self.toggle.setAutoRaise(True)
-        self.toggle.setToolTip("Collapse or expand this entry")
+        self.toggle.setToolTip("Fold or unfold this entry")
         self.toggle.clicked.connect(lambda: self.set_collapsed(not self.collapsed))
-        self.kind_label = QtWidgets.QLabel(self.kind.upper())
-        self.kind_label.setStyleSheet(
-            "color: #FFFFFF; background: #5A5A5A; padding: 1px 5px; border-radius: 3px;"
-            "font-size: 9pt;"
-        )
         self.title_label = QtWidgets.QLabel()
         font = self.title_label.font()
         font.setBold(True)
         font.setPointSizeF(font.pointSizeF() * 1.15)
         self.title_label.setFont(font)
+        self.kind_label = QtWidgets.QLabel(KIND_WORDS.get(self.kind, self.kind))
+        self.kind_label.setStyleSheet(f"color: {color}; font-weight: bold;")
+        self.headline_label = QtWidgets.QLabel()
+        self.headline_label.setStyleSheet(f"color: {MUTED};")
         header.addWidget(self.toggle)
         header.addWidget(self.kind_label)
-        header.addWidget(self.title_label, 1)
+        header.addWidget(self.title_label)
+        header.addSpacing(12)
+        header.addWidget(self.headline_label, 1)
         self.up_button = self._tool("Move up", QtCore.Qt.ArrowType.UpArrow)
         self.down_button = self._tool("Move down", QtCore.Qt.ArrowType.DownArrow)
         self.delete_button = QtWidgets.QToolButton()
@@ -68,12 +68,10 @@ class EntryCard(QtWidgets.QFrame):
         self.delete_button.clicked.connect(lambda: self.delete_requested.emit(self))
         layout.addLayout(header)
         layout.addWidget(body)
-        if isinstance(body, RunEntryView | SweepEntryView):
-            body.title_label.hide()  # the card's header carries the title
-            body.setFrameShape(QtWidgets.QFrame.Shape.NoFrame)
         body.selected.connect(lambda _: self.selected.emit(self))
         self.model.subscribe(self._on_model_changed)
         self._show_title()
+        self.refresh_headline()
 
     def _tool(self, tip: str, arrow: QtCore.Qt.ArrowType) -> QtWidgets.QToolButton:
         button = QtWidgets.QToolButton()
@@ -85,9 +83,18 @@ class EntryCard(QtWidgets.QFrame):
     def _on_model_changed(self, what: str) -> None:
         if what == "title":
             self._show_title()
+        elif what in ("status", "scenario"):
+            self.refresh_headline()
 
     def _show_title(self) -> None:
         self.title_label.setText(self.model.title)
+
+    def refresh_headline(self) -> None:
+        headline = getattr(self.body, "headline", None)
+        self.headline_label.setText(headline() if callable(headline) else "")
+
+    def set_selected(self, selected: bool) -> None:
+        self.title_label.setStyleSheet("text-decoration: underline;" if selected else "")
 
     @property
     def collapsed(self) -> bool:

@@ -12,11 +12,11 @@ import pyqtgraph as pg
 import pyqtgraph.exporters as exporters
 from PySide6 import QtWidgets
 
+from core.fan_model import FanModel
 from core.fileio import write_text_atomic
-from core.results import format_value
-from core.run_model import RunEntryModel
-from core.sweep import table_csv
-from core.sweep_model import SweepEntryModel
+from core.formats import format_value
+from core.map_model import MapModel
+from core.maps import table_csv
 
 
 def export_image(canvas: pg.GraphicsLayoutWidget, path: Path) -> None:
@@ -30,8 +30,8 @@ def export_image(canvas: pg.GraphicsLayoutWidget, path: Path) -> None:
     exporter.export(str(path))
 
 
-def run_entry_csv(model: RunEntryModel) -> str:
-    """Every member of every batch size of a run entry's fan, one row per logged step."""
+def fan_csv(model: FanModel) -> str:
+    """Every member of every batch size of a fan, one row per logged step received."""
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     header_done = False
@@ -52,8 +52,10 @@ def run_entry_csv(model: RunEntryModel) -> str:
             header_done = True
         for i, member in enumerate(stack.members):
             threshold = "" if math.isnan(member.threshold) else repr(member.threshold)
-            for row in range(stack.filled):
-                values = [format_value(float(stack.values[n][row, i])) for n in stack.names]
+            for row in range(stack.rows(i)):
+                values = [
+                    format_value(float(stack.values[n][row, i]), single=True) for n in stack.names
+                ]
                 step = int(stack.steps[row])
                 writer.writerow(
                     [i, member.method, member.name, threshold, batch, member.seed, step, *values]
@@ -61,12 +63,12 @@ def run_entry_csv(model: RunEntryModel) -> str:
     return buffer.getvalue()
 
 
-def export_csv(model: RunEntryModel | SweepEntryModel, path: Path) -> None:
-    """A run entry's fan metrics, or a sweep entry's table (the columns of sweep.csv)."""
-    if isinstance(model, SweepEntryModel):
+def export_csv(model: FanModel | MapModel, path: Path) -> None:
+    """A fan's metrics, or a map's table (the columns of map.csv)."""
+    if isinstance(model, MapModel):
         write_text_atomic(path, table_csv(model.rows, header=True))
     else:
-        write_text_atomic(path, run_entry_csv(model))
+        write_text_atomic(path, fan_csv(model))
 
 
 def export_menu(
@@ -95,4 +97,4 @@ def export_menu(
     return menu
 
 
-__all__ = ["export_csv", "export_image", "export_menu", "run_entry_csv"]
+__all__ = ["export_csv", "export_image", "export_menu", "fan_csv"]

@@ -1,4 +1,4 @@
-"""NoteView: a notebook note, Markdown rendered; double-click (or Edit) to edit it in place."""
+"""NoteView: a study's note, Markdown rendered; double-click (or Edit) to edit it in place."""
 
 from __future__ import annotations
 
@@ -6,9 +6,9 @@ from collections.abc import Callable
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from core.run_model import NoteEntryModel
+from core.entry_model import NoteModel
 
-Commit = Callable[[NoteEntryModel, str, str], None]  # model, new title, new text
+Commit = Callable[[NoteModel, str, str], None]  # model, new title, new text
 
 
 class NoteView(QtWidgets.QFrame):
@@ -16,7 +16,7 @@ class NoteView(QtWidgets.QFrame):
 
     def __init__(
         self,
-        model: NoteEntryModel,
+        model: NoteModel,
         commit: Commit | None = None,
         parent: QtWidgets.QWidget | None = None,
         editable: bool = True,
@@ -117,6 +117,6 @@ class NoteView(QtWidgets.QFrame):
         super().mousePressEvent(event)
 
 
-def _set_directly(model: NoteEntryModel, title: str, text: str) -> None:
+def _set_directly(model: NoteModel, title: str, text: str) -> None:
     model.set_title(title)
     model.set_text(text)

@@ -1,7 +1,7 @@
 """The presentation view: one entry at a time, full screen, large type, arrow keys to move.
 
-It shows the window's own entry models through views of its own, so a run started in the
-notebook keeps filling its plots here, and the slider still scrubs the fan live.
+It shows the study's own entry models through views of its own, so an entry training in the
+study keeps filling its plots here, and the slider still scrubs the fan live.
 """
 
 from __future__ import annotations
@@ -10,17 +10,16 @@ from collections.abc import Callable
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from app.entry_card import EntryCard
+from app.fan_view import FanView
+from app.map_view import MapView
 from app.note_view import NoteView
-from app.run_entry_view import RunEntryView
-from app.sweep_entry_view import SweepEntryView
-from core.run_model import NoteEntryModel, RunEntryModel
+from app.views import EntryView, make_view
+from core.runner import Runner
+from core.study import Study
 
-TITLE_PT = 30
+TITLE_PT = 28
 TEXT_PT = 20
-PLOT_PT = 14
-
-PresentedView = NoteView | RunEntryView | SweepEntryView
+PLOT_PT = 13
 
 
 def enlarge_plots(canvas: object, points: int = PLOT_PT) -> None:
@@ -31,11 +30,15 @@ def enlarge_plots(canvas: object, points: int = PLOT_PT) -> None:
     layout = canvas.ci  # type: ignore[attr-defined]
     tick_font, small_font = QtGui.QFont(), QtGui.QFont()
     tick_font.setPointSize(points - 1)
-    small_font.setPointSize(points - 5)  # axis names must fit beside a plot of half a screen
+    small_font.setPointSize(points - 3)
     for item in layout.items:
+        if isinstance(item, pg.LegendItem):
+            for _, label in item.items:
+                label.setText(label.text, size=f"{points - 2}pt")
+            continue
         if not isinstance(item, pg.PlotItem):
             continue
-        item.titleLabel.setText(item.titleLabel.text, size=f"{points + 2}pt")
+        item.titleLabel.setText(item.titleLabel.text, size=f"{points}pt")
         for name in ("left", "bottom"):
             axis = item.getAxis(name)
             axis.setStyle(tickFont=tick_font)
@@ -47,29 +50,28 @@ def enlarge_plots(canvas: object, points: int = PLOT_PT) -> None:
 
 
 class PresentationWindow(QtWidgets.QWidget):
-    """Shows `cards[index]`: Right, Down, Space or PageDown for the next entry; Left, Up,
+    """Shows one entry of the study: Right, Down, Space or PageDown for the next; Left, Up,
     Backspace or PageUp for the one before; Home and End; Esc leaves."""
 
     closed = QtCore.Signal()
 
     def __init__(
         self,
-        cards: list[EntryCard],
+        study: Study,
         index: int = 0,
-        run_view: object = None,
-        run_sweep: object = None,
+        runner: Runner | None = None,
         parent: QtWidgets.QWidget | None = None,
     ) -> None:
         super().__init__(parent, QtCore.Qt.WindowType.Window)
-        self.setWindowTitle("Gradfence - presentation")
+        self.setWindowTitle(f"Gradfence - {study.title} - presentation")
         self.setObjectName("presentation")
         self.setStyleSheet("#presentation { background: #FFFFFF; }")
-        self.cards = list(cards)
-        self._run_view, self._run_sweep = run_view, run_sweep
-        self.views: dict[int, PresentedView] = {}
+        self.study, self.runner = study, runner
+        self.entries = list(study.entries)
+        self.views: dict[int, EntryView] = {}
         self.pages: dict[int, QtWidgets.QScrollArea] = {}
         layout = QtWidgets.QVBoxLayout(self)
-        layout.setContentsMargins(40, 24, 40, 16)
+        layout.setContentsMargins(32, 16, 32, 10)
         self.title_label = QtWidgets.QLabel()
         title_font = self.title_label.font()
         title_font.setPointSize(TITLE_PT)
@@ -94,7 +96,7 @@ class PresentationWindow(QtWidgets.QWidget):
             ((key.Key_Right, key.Key_Space, key.Key_PageDown, key.Key_Down), self.next),
             ((key.Key_Left, key.Key_Backspace, key.Key_PageUp, key.Key_Up), self.previous),
             ((key.Key_Home,), lambda: self.show_entry(0)),
-            ((key.Key_End,), lambda: self.show_entry(len(self.cards) - 1)),
+            ((key.Key_End,), lambda: self.show_entry(len(self.entries) - 1)),
             ((key.Key_Escape,), self.leave),
         ):
             for k in keys:
@@ -104,33 +106,29 @@ class PresentationWindow(QtWidgets.QWidget):
         if app is not None:
             app.installEventFilter(self)
         self.index = -1
-        if self.cards:
+        if self.entries:
             self.show_entry(index)
 
-    def _view(self, index: int) -> PresentedView:
+    def _view(self, index: int) -> EntryView:
         if index in self.views:
             return self.views[index]
-        model = self.cards[index].model
-        view: PresentedView
-        if isinstance(model, NoteEntryModel):
-            view = NoteView(model, editable=False)
+        view = make_view(self.entries[index], editable=False)
+        if isinstance(view, NoteView):
             view.label.setStyleSheet(f"font-size: {TEXT_PT}pt;")
             view.label.setAlignment(QtCore.Qt.AlignmentFlag.AlignTop)
-        elif isinstance(model, RunEntryModel):
-            view = RunEntryView(model)
-            if self._run_view is not None:
-                view.run_requested.connect(self._run_view)
-            enlarge_plots(view.canvas)
         else:
-            view = SweepEntryView(model)
-            if self._run_sweep is not None:
-                view.run_requested.connect(self._run_sweep)
-            view.sentences.setStyleSheet(f"font-size: {PLOT_PT}pt;")
-            view.sweep_drawn.connect(lambda v=view: enlarge_plots(v.canvas))
+            if self.runner is not None:
+                runner = self.runner
+                view.train_requested.connect(lambda v, f: runner.train(v.model, focus=f))
+                view.stop_requested.connect(lambda v: runner.stop(v.model))
+            if isinstance(view, FanView):
+                view.use_columns(3)
+                view.setMinimumHeight(0)
+                view.canvas.setMinimumHeight(300)
+            if isinstance(view, MapView):
+                view.sentences.setStyleSheet(f"font-size: {PLOT_PT}pt;")
+                view.drawn.connect(lambda v=view: enlarge_plots(v.canvas))
             enlarge_plots(view.canvas)
-        if isinstance(view, RunEntryView | SweepEntryView):
-            view.title_label.hide()
-            view.setFrameShape(QtWidgets.QFrame.Shape.NoFrame)
             view.setStyleSheet(
                 "QLabel, QPushButton, QComboBox, QCheckBox, QDoubleSpinBox "
                 f"{{ font-size: {PLOT_PT}pt; }}"
@@ -148,16 +146,16 @@ class PresentationWindow(QtWidgets.QWidget):
         return view
 
     def show_entry(self, index: int) -> None:
-        if not self.cards:
+        if not self.entries:
             return
-        index = max(0, min(index, len(self.cards) - 1))
+        index = max(0, min(index, len(self.entries) - 1))
         view = self._view(index)
         self.index = index
         self.stack.setCurrentWidget(self.pages[index])
-        card = self.cards[index]
-        self.title_label.setText(card.model.title)
-        self.position_label.setText(f"{card.kind} - {index + 1} / {len(self.cards)}")
-        if isinstance(view, RunEntryView):
+        entry = self.entries[index]
+        self.title_label.setText(entry.title)
+        self.position_label.setText(f"{entry.kind} - {index + 1} / {len(self.entries)}")
+        if isinstance(view, FanView | MapView):
             view.refresh()
 
     def next(self) -> None:
@@ -171,7 +169,7 @@ class PresentationWindow(QtWidgets.QWidget):
 
     def refresh_if_dirty(self) -> None:
         view = self.views.get(self.index)
-        if isinstance(view, RunEntryView | SweepEntryView):
+        if isinstance(view, FanView | MapView):
             view.refresh_if_dirty()
 
     def eventFilter(self, watched: QtCore.QObject, event: QtCore.QEvent) -> bool:

@@ -8,9 +8,9 @@ from core.presets import PresetInfo, list_presets, user_dir
 
 
 class PresetBrowser(QtWidgets.QDialog):
-    """After exec(): `choice` is (preset, "run" | "sweep"), or None when closed."""
+    """After exec(): `choice` is (preset, "fan" | "map"), or None when closed."""
 
-    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+    def __init__(self, parent: QtWidgets.QWidget | None = None, kind: str = "fan") -> None:
         super().__init__(parent)
         self.setWindowTitle("Presets")
         self.resize(900, 520)
@@ -39,22 +39,25 @@ class PresetBrowser(QtWidgets.QDialog):
         folder = QtWidgets.QLabel(f"Your presets are saved in {user_dir()}")
         folder.setStyleSheet("color: #555555")
         buttons = QtWidgets.QDialogButtonBox()
-        self.run_button = buttons.addButton(
-            "Add as run entry", QtWidgets.QDialogButtonBox.ButtonRole.AcceptRole
+        self.fan_button = buttons.addButton(
+            "Add as fan", QtWidgets.QDialogButtonBox.ButtonRole.AcceptRole
         )
-        self.sweep_button = buttons.addButton(
-            "Add as sweep entry", QtWidgets.QDialogButtonBox.ButtonRole.AcceptRole
+        self.fan_button.setToolTip("Every method at 17 thresholds and 4 batch sizes, trained live")
+        self.map_button = buttons.addButton(
+            "Add as map", QtWidgets.QDialogButtonBox.ButtonRole.AcceptRole
         )
+        self.map_button.setToolTip("The batch size x threshold x seed grid, its maps and windows")
         buttons.addButton(QtWidgets.QDialogButtonBox.StandardButton.Close)
         buttons.rejected.connect(self.reject)
-        self.run_button.clicked.connect(lambda: self._choose("run"))
-        self.sweep_button.clicked.connect(lambda: self._choose("sweep"))
+        self.fan_button.clicked.connect(lambda: self._choose("fan"))
+        self.map_button.clicked.connect(lambda: self._choose("map"))
         layout.addWidget(self.table, 1)
         layout.addWidget(self.notes)
         layout.addWidget(folder)
         layout.addWidget(buttons)
+        (self.map_button if kind == "map" else self.fan_button).setDefault(True)
         self.table.currentItemChanged.connect(lambda *_: self._show_selected())
-        self.table.itemDoubleClicked.connect(lambda *_: self._choose("run"))
+        self.table.itemDoubleClicked.connect(lambda *_: self._choose("fan"))
         first = self.table.topLevelItem(0)
         if first is not None:
             self.table.setCurrentItem(first)
@@ -75,8 +78,8 @@ class PresetBrowser(QtWidgets.QDialog):
     def _show_selected(self) -> None:
         info = self.current()
         usable = info is not None and info.scenario is not None
-        self.run_button.setEnabled(usable)
-        self.sweep_button.setEnabled(usable)
+        self.fan_button.setEnabled(usable)
+        self.map_button.setEnabled(usable)
         if info is None:
             self.notes.setText("No presets found.")
         elif info.scenario is None:

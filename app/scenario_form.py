@@ -1,8 +1,10 @@
 """ScenarioForm: a form generated from the scenario model's field declarations.
 
-Choices become drop-downs, numbers get their ranges and units, every widget's tooltip is the
-field's help (and, for the method, the formula). Editing sets the model's scenario through
-validated overrides; a rejected value shows the validator's sentence and changes nothing.
+Each field shows under its plain label, with its TOML key, help and range in the tooltip; only
+the fields that apply are shown (core.scenario.applicable_fields: a clip table shows the fields
+of its method and rule, `classes` only for classification, and so on). The threshold names its
+unit per method. Editing sets the entry's scenario through validated overrides; a rejected value
+shows the validator's sentence and changes nothing.
 """
 
 from __future__ import annotations
@@ -14,19 +16,26 @@ from typing import Any
 
 from PySide6 import QtWidgets
 
+from core.entry_model import TrainedEntry
 from core.errors import GradfenceInputError
 from core.fields import FieldInfo, describe_range, field_info
-from core.run_model import ScenarioHolder
-from core.scenario import METHOD_HELP, ClipConfig, Scenario
+from core.methods import METHODS
+from core.scenario import ClipConfig, Scenario, applicable_fields
 
-TABLES = ("data", "outliers", "model", "train", "sweep")
+TABLES = (
+    ("data", "Data"),
+    ("outliers", "Outliers"),
+    ("model", "Model"),
+    ("train", "Training"),
+    ("map", "Map grid"),
+)
 INT_LIMIT = 2**31 - 1
 
 
-Commit = Callable[[ScenarioHolder, Scenario], None]
+Commit = Callable[[TrainedEntry, Scenario], None]
 
 
-def set_directly(model: ScenarioHolder, scenario: Scenario) -> None:
+def set_directly(model: TrainedEntry, scenario: Scenario) -> None:
     model.set_scenario(scenario)
 
 
@@ -35,7 +44,7 @@ class ScenarioForm(QtWidgets.QScrollArea):
 
     def __init__(
         self,
-        model: ScenarioHolder,
+        model: TrainedEntry,
         commit: Commit | None = None,
         parent: QtWidgets.QWidget | None = None,
     ) -> None:
@@ -44,48 +53,66 @@ class ScenarioForm(QtWidgets.QScrollArea):
         self._commit = commit or set_directly
         self.setWidgetResizable(True)
         self.widgets: dict[str, QtWidgets.QWidget] = {}
+        self.labels: dict[str, QtWidgets.QLabel] = {}
+        self._rows: dict[str, tuple[QtWidgets.QFormLayout, QtWidgets.QWidget]] = {}
+        self.groups: dict[str, QtWidgets.QGroupBox] = {}
         self.error_label = QtWidgets.QLabel()
         self.error_label.setWordWrap(True)
-        self.error_label.setStyleSheet("color: #B00000")
+        self.error_label.setStyleSheet("color: #A33A1E")
+        self._shape = self._shape_of(model.scenario)
         self._build()
         model.subscribe(self._on_model_changed)
+
+    @staticmethod
+    def _shape_of(scenario: Scenario) -> int:
+        """What decides which widgets exist: the number of [[clip]] tables."""
+        return len(scenario.clip)
 
     def _build(self) -> None:
         body = QtWidgets.QWidget()
         layout = QtWidgets.QVBoxLayout(body)
         layout.addWidget(self.error_label)
         scenario = self.model.scenario
-        for table in TABLES:
-            layout.addWidget(
-                self._group(table, type(getattr(scenario, table)), getattr(scenario, table))
-            )
+        self.widgets, self.labels, self._rows, self.groups = {}, {}, {}, {}
+        for table, title in TABLES:
+            value = getattr(scenario, table)
+            layout.addWidget(self._group(table, type(value), value, title))
         for i, clip in enumerate(scenario.clip):
-            layout.addWidget(
-                self._group(
-                    f"clip.{i}", ClipConfig, clip, title=f"[[clip]] {i}: {clip.display_name}"
-                )
-            )
+            title = f"Clipping {i + 1}: {clip.display_name}"
+            layout.addWidget(self._group(f"clip.{i}", ClipConfig, clip, title))
         layout.addStretch(1)
         self.setWidget(body)
+        self.show_scenario(scenario)
 
-    def _group(
-        self, path: str, cls: type, value: Any, title: str | None = None
-    ) -> QtWidgets.QGroupBox:
-        box = QtWidgets.QGroupBox(title or f"[{path}]")
+    def _group(self, path: str, cls: type, value: Any, title: str) -> QtWidgets.QGroupBox:
+        box = QtWidgets.QGroupBox(title)
+        box.setToolTip(f"[{path}]" if not path.startswith("clip.") else "[[clip]]")
         form = QtWidgets.QFormLayout(box)
         hints = typing.get_type_hints(cls)
         for f in dataclasses.fields(cls):
             key = f"{path}.{f.name}"
             info = field_info(cls, f.name)
             widget = self._widget(key, hints[f.name], info, getattr(value, f.name))
-            tip = info.help
+            label = QtWidgets.QLabel(self._label_text(key, info, value))
+            tip = f"{key}\n{info.help}"
+            if _base_type(hints[f.name]) is float:
+                tip += f"\nAllowed: {describe_range(info, 'number')}."
             if f.name == "method":
-                tip += "\n\n" + "\n".join(f"{m}: {h}" for m, h in METHOD_HELP.items())
+                tip += "\n\n" + "\n".join(f"{m.id}: {m.help}" for m in METHODS.values())
             widget.setToolTip(tip)
-            label = f.name + (f" ({info.unit})" if info.unit else "")
+            label.setToolTip(tip)
             form.addRow(label, widget)
-            self.widgets[key] = widget
+            self.widgets[key], self.labels[key] = widget, label
+            self._rows[key] = (form, widget)
+        self.groups[path] = box
         return box
+
+    @staticmethod
+    def _label_text(key: str, info: FieldInfo, value: Any) -> str:
+        text = info.label or key.rsplit(".", 1)[-1]
+        if key.endswith(".threshold") and isinstance(value, ClipConfig) and value.spec.unit:
+            return f"{text} ({value.spec.unit})"
+        return f"{text} ({info.unit})" if info.unit else text
 
     def _widget(self, key: str, hint: Any, info: FieldInfo, value: Any) -> QtWidgets.QWidget:
         base = _base_type(hint)
@@ -115,7 +142,6 @@ class ScenarioForm(QtWidgets.QScrollArea):
             line = QtWidgets.QLineEdit(_text(value))
             if base is float:
                 line.setPlaceholderText("default")
-                line.setToolTip(describe_range(info, "number"))
             line.editingFinished.connect(lambda k=key, w=line: self._apply_text(k, w.text()))
             widget = line
         return widget
@@ -135,25 +161,29 @@ class ScenarioForm(QtWidgets.QScrollArea):
             self.error_label.setText(str(exc))
             return
         self.error_label.setText("")
-        self._commit(self.model, scenario)
+        if scenario != self.model.scenario:
+            self._commit(self.model, scenario)
 
     def detach(self) -> None:
         self.model.unsubscribe(self._on_model_changed)
 
     def _on_model_changed(self, what: str) -> None:
         if what == "scenario":
-            self.show_scenario(self.model.scenario)
+            scenario = self.model.scenario
+            if self._shape_of(scenario) != self._shape:
+                self._shape = self._shape_of(scenario)
+                self._build()
+            else:
+                self.show_scenario(scenario)
+
+    def visible_keys(self) -> set[str]:
+        """The keys whose rows are shown now."""
+        return {k for k, (form, w) in self._rows.items() if form.isRowVisible(w)}
 
     def show_scenario(self, scenario: Scenario) -> None:
-        """Show the model's values; rebuild when the [[clip]] tables changed in number."""
-        if (
-            any(k.startswith(f"clip.{len(scenario.clip)}.") for k in self.widgets)
-            or f"clip.{len(scenario.clip) - 1}.method" not in self.widgets
-        ):
-            self.widgets = {}
-            self._build()
-            return
+        """Show the model's values, and only the rows that apply to them."""
         raw = scenario.to_dict()
+        shown = applicable_fields(scenario, self.model.kind)
         for key, widget in self.widgets.items():
             value = _lookup(raw, key)
             widget.blockSignals(True)
@@ -166,6 +196,15 @@ class ScenarioForm(QtWidgets.QScrollArea):
             elif isinstance(widget, QtWidgets.QLineEdit):
                 widget.setText(_text(value))
             widget.blockSignals(False)
+            form, _ = self._rows[key]
+            form.setRowVisible(widget, key in shown)
+        self.groups["map"].setVisible(any(k.startswith("map.") for k in shown))
+        for i, clip in enumerate(scenario.clip):
+            key = f"clip.{i}.threshold"
+            if key in self.labels:
+                info = field_info(ClipConfig, "threshold")
+                self.labels[key].setText(self._label_text(key, info, clip))
+            self.groups[f"clip.{i}"].setTitle(f"Clipping {i + 1}: {clip.display_name}")
 
 
 def _base_type(hint: Any) -> Any:

@@ -1,4 +1,4 @@
-"""TomlEditor: the run entry's scenario as TOML, validated as you type.
+"""TomlEditor: a fan or map entry's scenario as TOML, validated as you type.
 
 Valid text replaces the model's scenario; invalid text shows the validator's sentence and the
 model keeps its last valid scenario.
@@ -9,8 +9,8 @@ from __future__ import annotations
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from app.scenario_form import Commit, set_directly
+from core.entry_model import TrainedEntry
 from core.errors import GradfenceInputError
-from core.run_model import ScenarioHolder
 from core.scenario import dumps_scenario, loads_scenario
 
 DEBOUNCE_MS = 300
@@ -19,7 +19,7 @@ DEBOUNCE_MS = 300
 class TomlEditor(QtWidgets.QWidget):
     def __init__(
         self,
-        model: ScenarioHolder,
+        model: TrainedEntry,
         commit: Commit | None = None,
         parent: QtWidgets.QWidget | None = None,
     ) -> None:

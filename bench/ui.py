@@ -1,6 +1,6 @@
 """Desktop responsiveness while a run entry trains, offscreen.
 
-1. launch to window shown: a fresh process that imports the app, opens the demo notebook and
+1. launch to window shown: a fresh process that imports the app, opens the demo study and
    reports when the window is on screen (interpreter start-up included).
 2. event-loop latency: a 10 ms timer probe runs while the demo's first entry trains in the
    workers; lateness = actual interval - 10 ms; p99 and max.
@@ -28,9 +28,9 @@ import time
 from PySide6 import QtWidgets
 from app.desktop import demo_path
 from app.main_window import MainWindow
-from core.notebook import load_notebook
+from core.study import Study
 app = QtWidgets.QApplication([])
-window = MainWindow(load_notebook(demo_path()))
+window = MainWindow(Study.open(demo_path()))
 window.show()
 app.processEvents()
 print("shown", flush=True)
@@ -60,22 +60,23 @@ def responsiveness(seconds: float = 8.0) -> tuple[list[float], float, float]:
 
     from app.desktop import demo_path
     from app.main_window import MainWindow
-    from core.notebook import load_notebook
-    from core.run_model import RUNNING
+    from core.entry_model import TRAINING
+    from core.study import Study
 
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication([])
-    window = MainWindow(load_notebook(demo_path()))
+    window = MainWindow(Study.open(demo_path()))
     window.show()
     window.pool.start()
-    while window.pool._ready < window.pool.size:  # workers import torch first
+    while window.pool.ready < window.pool.size:  # workers import torch first
         app.processEvents()
         time.sleep(0.01)
-    view = window.run_views[1]
+    window.auto_train = False
+    view = window.fan_views[1]
     # Long enough that the whole measurement sees training, not the stacks' set-up.
     view.model.set_scenario(view.model.scenario.with_overrides({"train.steps": 5000}))
     arrivals = [0]
     view.model.subscribe(lambda what: arrivals.__setitem__(0, arrivals[0] + (what == "data")))
-    window.run_view(view)
+    window.runner.train(view.model)
     lateness: list[float] = []
     last = [time.perf_counter()]
 
@@ -91,7 +92,7 @@ def responsiveness(seconds: float = 8.0) -> tuple[list[float], float, float]:
     start = time.perf_counter()
     last[0] = start
     timer.start(10)
-    while time.perf_counter() - start < seconds and view.model.status == RUNNING:
+    while time.perf_counter() - start < seconds and view.model.status == TRAINING:
         app.processEvents(QtCore.QEventLoop.ProcessEventsFlag.AllEvents, 5)
         time.sleep(0.001)
     elapsed = time.perf_counter() - start

@@ -1,4 +1,4 @@
-"""The batch-size coupling analysis, as plain functions of a sweep table (core.sweep rows).
+"""The batch-size coupling analysis, as plain functions of a map table (core.maps rows).
 
 stability_map: final clean validation loss over batch size x threshold per method.
 threshold_windows: per batch size, the thresholds within a factor (1 + tolerance) of the best
@@ -75,6 +75,7 @@ class Window:
     upper: float | None
     at_lower_edge: bool  # the window reaches the smallest threshold tried: it may go further
     at_upper_edge: bool
+    inside: tuple[float, ...] = ()  # the grid thresholds judged inside
 
 
 @dataclass(frozen=True)
@@ -92,7 +93,12 @@ class MethodWindows:
         return {
             "method": self.method,
             "windows": [
-                {"batch_size": w.batch_size, "lower": w.lower, "upper": w.upper}
+                {
+                    "batch_size": w.batch_size,
+                    "lower": w.lower,
+                    "upper": w.upper,
+                    "inside": list(w.inside),
+                }
                 for w in self.windows
             ],
             "common": None
@@ -129,14 +135,21 @@ def threshold_windows(rows: Sequence[Row], label: str, tolerance: float = 1.0) -
         column = smap.loss[bi]
         finite = np.isfinite(column)
         if method == "none" or not finite.any():
-            windows.append(Window(b, None, None, False, False))
+            windows.append(Window(b, None, None, False, False, ()))
             inside.append(set())
             continue
         best = column[finite].min()
         good = finite & (column <= best * (1.0 + tolerance))
         chosen = thresholds[good]
         windows.append(
-            Window(b, float(chosen.min()), float(chosen.max()), bool(good[0]), bool(good[-1]))
+            Window(
+                b,
+                float(chosen.min()),
+                float(chosen.max()),
+                bool(good[0]),
+                bool(good[-1]),
+                tuple(float(t) for t in chosen),
+            )
         )
         inside.append({float(t) for t in chosen})
     common_set = set.intersection(*inside) if inside and all(inside) else set()

@@ -8,7 +8,8 @@ from typing import Any
 
 import torch
 
-from core.engine import Engine, Member, StepRecord, run_members
+from core.engine import Engine
+from core.member import Member, StepRecord, run_members
 from core.results import RunResult, collect
 from core.scenario import Scenario, load_scenario, parse_scenario
 

@@ -6,12 +6,18 @@ example (or each example's unit) so that the clipped gradient is the re-weighted
 Each returns the quantity its rule watches (the largest compared value of the step) and the
 share of compared items that were clipped.
 
+core/methods.py names, per method, the kernel here that the engine calls: a batch-mean kernel
+is `(BatchContext, level) -> (coefficient, watched, share)`, a per-example kernel is
+`ExampleContext -> Compared`.
+
 Shapes: k members of this method, B examples, layer l maps in_l -> out_l.
 """
 
 from __future__ import annotations
 
+import functools
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import torch
@@ -22,6 +28,67 @@ class ExampleWeights:
     rows: list[torch.Tensor]  # per layer: (k, B, out_l) or (k, B, 1) weight on dz for W_l
     bias: list[torch.Tensor]  # per layer: (k, B) weight on dz for b_l
     clipped_share: torch.Tensor  # (k,)
+
+
+class BatchContext:
+    """What a batch-mean kernel may read: the mean gradient of k members and their weights.
+
+    Per-parameter views and the members' weights are made on first use: global-norm and value
+    never need them, and the step is short enough for their cost to show.
+    """
+
+    def __init__(
+        self,
+        flat: torch.Tensor,
+        views: Callable[[], list[torch.Tensor]],
+        params: Callable[[], list[torch.Tensor]],
+        eps: float,
+        clipped_layers: int,
+    ) -> None:
+        self.flat = flat  # (k, P) the mean gradient
+        self._views, self._params = views, params
+        self.eps = eps  # the members' [[clip]] eps (AGC floor)
+        self.clipped_layers = clipped_layers  # layers a method that spares the head may clip
+
+    @functools.cached_property
+    def views(self) -> list[torch.Tensor]:
+        """Per parameter (k, *shape), views of `flat`."""
+        return self._views()
+
+    @functools.cached_property
+    def params(self) -> list[torch.Tensor]:
+        """Per parameter (k, *shape), the members' weights."""
+        return self._params()
+
+
+@dataclass
+class ExampleContext:
+    """What a per-example kernel may read: layer inputs and output gradients of k members."""
+
+    inputs: list[torch.Tensor]  # per layer (k, B, in)
+    dz: list[torch.Tensor]  # per layer (k, B, out), of the reduced loss
+    norms: torch.Tensor  # (k, B) each example's pre-clip gradient norm
+    member_params: Callable[[], list[torch.Tensor]]  # made on first use, as for BatchContext
+    unreduce: float  # undoes the loss reduction folded into dz (B for mean, 1 for sum)
+    layers: int
+    clipped_layers: int
+    eps: float
+    microbatch: int
+    share: bool  # compute the clipped share (logged steps)
+
+    @functools.cached_property
+    def params(self) -> list[torch.Tensor]:
+        """Per parameter (k, *shape), the members' weights."""
+        return self.member_params()
+
+
+@dataclass
+class Compared:
+    """A per-example kernel's answer: what it compares with the threshold, and the weights it
+    gives for a threshold."""
+
+    watch: Callable[[], torch.Tensor]  # (k, n): per example (or group) the compared size
+    weigh: Callable[[torch.Tensor], ExampleWeights]  # level (k,) -> weights
 
 
 def example_sq_norms(inputs: list[torch.Tensor], dz: list[torch.Tensor]) -> torch.Tensor:
@@ -138,16 +205,6 @@ def example_agc(
     return ExampleWeights(row_w, bias_w, clipped / max(units, 1))
 
 
-def example_agc_watch(
-    ratios: tuple[list[torch.Tensor], list[torch.Tensor], list[torch.Tensor], list[torch.Tensor]],
-) -> torch.Tensor:
-    """The largest unit ratio |G_i| / max(|W_i|, eps) of any example, per member."""
-    rows, bias, row_floor, bias_floor = ratios
-    worst = [torch.amax(r / f, dim=(1, 2)) for r, f in zip(rows, row_floor, strict=True)]
-    worst += [torch.amax(b / f, dim=1) for b, f in zip(bias, bias_floor, strict=True)]
-    return torch.stack(worst).amax(dim=0)
-
-
 # ---------------------------------------------------------------------------------------------
 # Batch-mean methods: a coefficient, broadcastable to the flat mean gradient (k, P), multiplies
 # it. Each takes the flat gradient or its per-parameter views (k, *shape).
@@ -203,3 +260,55 @@ def unit_agc(
         return torch.ones_like(lam[:, None]), torch.zeros_like(lam), torch.zeros_like(lam)
     coef = torch.cat([c.reshape(c.shape[0], -1) for c in coefs], dim=1)
     return coef, torch.stack(ratios).amax(dim=0), clipped / units
+
+
+# ---------------------------------------------------------------------------------------------
+# Kernels named in core/methods.py
+
+
+def global_norm_kernel(ctx: BatchContext, level: torch.Tensor) -> BatchResult:
+    return global_norm(ctx.flat, level)
+
+
+def value_kernel(ctx: BatchContext, level: torch.Tensor) -> BatchResult:
+    return value(ctx.flat, level)
+
+
+def tensor_norm_kernel(ctx: BatchContext, level: torch.Tensor) -> BatchResult:
+    return tensor_norm(ctx.views, level)
+
+
+def unit_agc_kernel(ctx: BatchContext, level: torch.Tensor) -> BatchResult:
+    return unit_agc(ctx.views, ctx.params, level, ctx.eps, ctx.clipped_layers)
+
+
+def example_norm_kernel(ctx: ExampleContext) -> Compared:
+    return Compared(
+        watch=lambda: ctx.norms,
+        weigh=lambda level: example_norm(ctx.norms, level, ctx.layers, ctx.share),
+    )
+
+
+def microbatch_norm_kernel(ctx: ExampleContext) -> Compared:
+    group_norms = microbatch_group_norms(ctx.inputs, ctx.dz, ctx.microbatch) * ctx.unreduce
+    return Compared(
+        watch=lambda: group_norms,
+        weigh=lambda level: microbatch_norm(
+            group_norms, level, ctx.microbatch, ctx.layers, ctx.share
+        ),
+    )
+
+
+def example_agc_kernel(ctx: ExampleContext) -> Compared:
+    ratios = unit_ratios(ctx.inputs, ctx.dz, ctx.params, ctx.eps, ctx.clipped_layers, ctx.unreduce)
+
+    def watch() -> torch.Tensor:
+        """Each example's largest unit ratio (k, B); zeros when no layer is clipped."""
+        rows, bias, row_floor, bias_floor = ratios
+        if not rows:
+            return torch.zeros_like(ctx.norms)
+        worst = [torch.amax(r / f, dim=2) for r, f in zip(rows, row_floor, strict=True)]
+        worst += [b / f for b, f in zip(bias, bias_floor, strict=True)]
+        return torch.stack(worst).amax(dim=0)
+
+    return Compared(watch=watch, weigh=lambda level: example_agc(ratios, level, ctx.layers))

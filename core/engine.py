@@ -19,6 +19,14 @@ import torch
 
 from core import clipping
 from core.data import Dataset, build_dataset
+from core.member import (
+    KEPT_AFTER_DIVERGING,
+    Member,
+    StepRecord,
+    metric_names,
+    run_members,
+)
+from core.methods import MethodSpec
 from core.model import (
     Architecture,
     Evaluator,
@@ -33,7 +41,17 @@ from core.model import (
 )
 from core.rules import FixedRule, Rule, make_rule
 from core.sampler import plan_batches
-from core.scenario import PER_EXAMPLE_METHODS, ClipConfig, Scenario, resolve_clip
+from core.scenario import ClipConfig, Scenario, resolve_clip
+
+__all__ = [
+    "Engine",
+    "Member",
+    "StackPass",
+    "StepRecord",
+    "init_seed",
+    "metric_names",
+    "run_members",
+]
 
 # A member whose clean batch loss exceeds this multiple of its starting validation loss (or 1,
 # whichever is larger) has diverged, as has one whose loss or gradient is not finite.
@@ -41,73 +59,13 @@ EXPLODE_FACTOR = 1e4
 # Exponential weight of the running estimates behind noise_scale, per logged step.
 NOISE_SCALE_ALPHA = 0.95
 
-GRADIENT_METRICS = (
-    "batch_loss",
-    "grad_norm_pre",
-    "grad_norm_post",
-    "clip_coef",
-    "clipped_share",
-    "outlier_share",
-    "outlier_pass",
-    "clean_cosine",
-    "update_norm",
-    "example_norm_p50",
-    "example_norm_p90",
-    "example_norm_p99",
-    "example_norm_max",
-    "noise_scale",
-    "lr",
-    "batch_outliers",
-)
-
-
-def metric_names(classification: bool) -> tuple[str, ...]:
-    """Metric columns in the order of metrics.csv (after step)."""
-    val = ("val_loss", "val_accuracy" if classification else "val_r2")
-    return GRADIENT_METRICS[:1] + val + GRADIENT_METRICS[1:] + ("diverged",)
-
-
-@dataclass(frozen=True)
-class Member:
-    """One trained model: a clipping method at one threshold, from one seed."""
-
-    clip: ClipConfig
-    seed: int
-
-    @property
-    def method(self) -> str:
-        return self.clip.method
-
-    @property
-    def name(self) -> str:
-        return self.clip.display_name
-
-    @property
-    def threshold(self) -> float:
-        return math.nan if self.clip.threshold is None else self.clip.threshold
-
-
-def run_members(scenario: Scenario) -> list[Member]:
-    """The members of `gradfence run`: each [[clip]] table at its threshold, at train.seed."""
-    return [Member(c, scenario.train.seed) for c in scenario.clip]
-
-
-@dataclass(frozen=True)
-class StepRecord:
-    """What one logged step measured: each metric is an array over the K members."""
-
-    step: int
-    values: dict[str, np.ndarray]
-    newly_diverged: tuple[int, ...] = ()
-    example_norms: np.ndarray | None = None  # (K, B) pre-clip norms, when the engine keeps them
-    outlier: np.ndarray | None = None  # (K, B) bool, beside example_norms
-
 
 @dataclass
 class _Group:
     """Members that share a method and its structural settings."""
 
     method: str
+    spec: MethodSpec
     positions: list[int]
     index: torch.Tensor
     clips: list[ClipConfig]
@@ -186,14 +144,16 @@ class StackPass:
         for i, m in enumerate(members):
             if m.method == "none":
                 continue
-            eps = m.clip.eps if m.method in ("unit-agc", "example-agc") else 0.0
-            group = m.clip.microbatch if m.method == "microbatch-norm" else 0
+            options = m.clip.spec.options
+            eps = m.clip.eps if "eps" in options else 0.0
+            group = m.clip.microbatch if "microbatch" in options else 0
             keyed.setdefault((m.method, eps, group), []).append(i)
         for (method, eps, group), positions in keyed.items():
             clips = [members[i].clip for i in positions]
             self.groups.append(
                 _Group(
                     method=method,
+                    spec=clips[0].spec,
                     positions=positions,
                     index=torch.tensor(positions, dtype=torch.long),
                     clips=clips,
@@ -208,14 +168,12 @@ class StackPass:
         # Set by an engine whose data holds non-finite values; then per-example methods check
         # every batch for examples to drop (finite data cannot make a finite model's norm inf).
         self.data_nonfinite = True
-        self.per_example = torch.tensor([m.method in PER_EXAMPLE_METHODS for m in members])
+        self.per_example = torch.tensor([m.clip.spec.per_example for m in members])
         self.any_per_example = bool(self.per_example.any())
         # A single group over the whole stack with one weight per example: the weighted dz of
         # the weight rows serves the bias too.
         self.scalar_weights = (
-            len(self.groups) == 1
-            and self.groups[0].whole
-            and self.groups[0].method in ("example-norm", "microbatch-norm")
+            len(self.groups) == 1 and self.groups[0].whole and self.groups[0].spec.one_weight
         )
         self.skips = torch.tensor([m.clip.on_spike == "skip" for m in members])
         self.any_skip = bool(self.skips.any())
@@ -268,7 +226,7 @@ class StackPass:
         bias_w: list[torch.Tensor] | None = None
         batch_groups = []
         for g in self.groups:
-            if g.method not in PER_EXAMPLE_METHODS:
+            if not g.spec.per_example:
                 batch_groups.append(g)
                 continue
             if rows_w is None or bias_w is None:
@@ -347,41 +305,36 @@ class StackPass:
         unreduce: float,
         detail: bool,
     ) -> tuple[clipping.ExampleWeights, torch.Tensor, torch.Tensor]:
-        layers = self.arch.layers
+        context = clipping.ExampleContext(
+            inputs=inputs,
+            dz=dz,
+            norms=norms,
+            member_params=lambda: [g.take(p) for p in params],
+            unreduce=unreduce,
+            layers=self.arch.layers,
+            clipped_layers=self.clipped_layers,
+            eps=g.eps,
+            microbatch=g.microbatch,
+            share=detail,
+        )
+        compared: clipping.Compared = g.spec.function()(context)
         # The watched quantity feeds adaptive rules and spike skipping only; skip it otherwise.
-        watch = g.adaptive or self.any_skip
-        nothing = g.unwatched
-        if g.method == "example-norm":
-            seen = norms.amax(dim=1) if watch else nothing
-            level = g.levels(seen)
-            return clipping.example_norm(norms, level, layers, detail), seen, level
-        if g.method == "microbatch-norm":
-            group_norms = clipping.microbatch_group_norms(inputs, dz, g.microbatch) * unreduce
-            seen = group_norms.amax(dim=1) if watch else nothing
-            level = g.levels(seen)
-            weights = clipping.microbatch_norm(group_norms, level, g.microbatch, layers, detail)
-            return weights, seen, level
-        sub_params = [g.take(p) for p in params]
-        ratios = clipping.unit_ratios(inputs, dz, sub_params, g.eps, self.clipped_layers, unreduce)
-        if watch and self.clipped_layers:
-            seen = clipping.example_agc_watch(ratios)
-        else:
-            seen = torch.zeros(len(g.positions), dtype=self.dtype) if watch else nothing
+        seen = compared.watch().amax(dim=1) if g.adaptive or self.any_skip else g.unwatched
         level = g.levels(seen)
-        return clipping.example_agc(ratios, level, layers), seen, level
+        return compared.weigh(level), seen, level
 
     def _batch_coefs(
         self, g: _Group, flat: torch.Tensor, params: list[torch.Tensor], level: torch.Tensor
     ) -> clipping.BatchResult:
-        if g.method == "global-norm":
-            return clipping.global_norm(flat, level)
-        if g.method == "value":
-            return clipping.value(flat, level)
-        views = self.layout.views(flat)
-        if g.method == "tensor-norm":
-            return clipping.tensor_norm(views, level)
-        sub_params = [g.take(p) for p in params]
-        return clipping.unit_agc(views, sub_params, level, g.eps, self.clipped_layers)
+        context = clipping.BatchContext(
+            flat,
+            views=lambda: self.layout.views(flat),
+            params=lambda: [g.take(p) for p in params],
+            eps=g.eps,
+            clipped_layers=self.clipped_layers,
+        )
+        result: clipping.BatchResult = g.spec.function()(context, level)
+        return result
 
     def _weighted_sums(
         self,
@@ -552,6 +505,7 @@ class Engine:
         K = len(members)
         self.example_norms = np.zeros((K, self.steps, self.batch_size)) if trace else None
         self.alive = torch.ones(K, dtype=torch.bool)
+        self.clipping = torch.tensor([m.method != "none" for m in members])
         self.nobody = torch.zeros(K, dtype=torch.bool)
         self.any_dead = False
         self.diverged_at: list[int | None] = [None] * K
@@ -661,6 +615,7 @@ class Engine:
             "val_accuracy" if self.arch.classification else "val_r2": val_metric,
             "grad_norm_pre": detail["grad_norm_pre"],
             "grad_norm_post": detail["grad_norm_post"],
+            "clip_level": torch.where(self.clipping, result.levels, math.nan),
             "clip_coef": detail["clip_coef"],
             "clipped_share": result.clipped_share,
             "outlier_share": detail["outlier_share"],
@@ -674,12 +629,13 @@ class Engine:
             "noise_scale": self._noise_scale(detail),
             "lr": torch.full_like(val_loss, self.lr),
             "batch_outliers": detail["batch_outliers"],
+            "skipped": result.skip.to(self.dtype),
         }
         dead = (~self.alive).numpy()
         out = {}
         for name, tensor in values.items():
             array = tensor.detach().double().numpy().copy()
-            if name not in ("lr", "batch_outliers"):
+            if name not in KEPT_AFTER_DIVERGING:
                 array[dead] = math.nan
             out[name] = array
         out["diverged"] = dead.astype(np.float64)

@@ -8,7 +8,7 @@ import math
 
 import numpy as np
 
-from core.engine import Member
+from core.member import Member
 from core.scenario import Scenario
 
 FAN_SIZE = 17  # odd, so the middle member is the preset's own threshold
@@ -29,7 +29,7 @@ def batch_ladder(scenario: Scenario) -> tuple[int, ...]:
         if scenario.outliers.kind != "none" and scenario.outliers.placement == "batch"
         else 1
     )
-    groups = [c.microbatch for c in scenario.clip if c.method == "microbatch-norm"]
+    groups = [c.microbatch for c in scenario.clip if "microbatch" in c.spec.options]
     sizes = set()
     for factor in LADDER:
         b = round(base * factor)
@@ -41,10 +41,11 @@ def batch_ladder(scenario: Scenario) -> tuple[int, ...]:
 
 
 def fan_members(scenario: Scenario) -> list[Member]:
-    """Every [[clip]] table at each fan threshold (method none once), at train.seed."""
+    """Every [[clip]] table at each fan threshold, at train.seed. Method none, and a table whose
+    rule sets the threshold itself (an adaptive rule), is one member."""
     members = []
     for clip in scenario.clip:
-        if clip.method == "none" or clip.threshold is None:
+        if clip.method == "none" or clip.threshold is None or clip.rule != "fixed":
             members.append(Member(clip, scenario.train.seed))
             continue
         for factor in fan_factors():

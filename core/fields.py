@@ -11,7 +11,7 @@ import difflib
 import math
 import types
 import typing
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, TypeVar
 
@@ -22,28 +22,36 @@ T = TypeVar("T")
 
 @dataclass(frozen=True)
 class FieldInfo:
-    """What a person may put in one key."""
+    """What a person may put in one key, and how the form names it."""
 
     help: str
     unit: str = ""
     lo: float | None = None
     hi: float | None = None
     lo_open: bool = False
-    choices: tuple[str, ...] = ()
+    fixed_choices: tuple[str, ...] = ()
+    choices_from: Callable[[], tuple[str, ...]] | None = None  # a registry read when asked
+    label: str = ""  # the plain name shown to people; the key itself goes in the tooltip
+
+    @property
+    def choices(self) -> tuple[str, ...]:
+        return self.choices_from() if self.choices_from is not None else self.fixed_choices
 
 
 def option(
     default: Any,
     help: str,
     *,
+    label: str = "",
     unit: str = "",
     lo: float | None = None,
     hi: float | None = None,
     lo_open: bool = False,
-    choices: Sequence[str] = (),
+    choices: Sequence[str] | Callable[[], tuple[str, ...]] = (),
 ) -> Any:
     """Declare a dataclass field with its documentation and allowed values."""
-    info = FieldInfo(help, unit, lo, hi, lo_open, tuple(choices))
+    fixed, dynamic = ((), choices) if callable(choices) else (tuple(choices), None)
+    info = FieldInfo(help, unit, lo, hi, lo_open, fixed, dynamic, label)
     return dataclasses.field(default=default, metadata={"info": info})
 
 

@@ -44,3 +44,38 @@ def _mode_for(path: Path) -> int:
         umask = os.umask(0)
         os.umask(umask)
         return 0o666 & ~umask
+
+
+def check_out_folder(path: Path, option: str = "--out") -> None:
+    """Fail now, in one sentence, if results cannot be written into the folder `path`."""
+    from core.errors import GradfenceInputError
+
+    if path.exists() and not path.is_dir():
+        raise GradfenceInputError(f"{option} {path}: is a file, not a folder; name a folder.")
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise GradfenceInputError(
+            f"{option} {path}: the folder cannot be made ({exc.strerror})."
+        ) from None
+    if not os.access(path, os.W_OK | os.X_OK):
+        raise GradfenceInputError(f"{option} {path}: the folder is not writable.")
+
+
+def check_out_file(path: Path, suffixes: tuple[str, ...], what: str, option: str = "--out") -> None:
+    """Fail now, in one sentence, if `path` cannot be written as a file of `what`."""
+    from core.errors import GradfenceInputError
+
+    if path.is_dir():
+        raise GradfenceInputError(f"{option} {path}: is a folder; name the {what} file to write.")
+    if path.suffix.lower() not in suffixes:
+        raise GradfenceInputError(
+            f"{option} {path}: a {what} file ends in {' or '.join(suffixes)}."
+        )
+    folder = path.parent if str(path.parent) else Path(".")
+    if folder.exists() and not folder.is_dir():
+        raise GradfenceInputError(f"{option} {path}: {folder} is a file, not a folder.")
+    if folder.exists() and not os.access(folder, os.W_OK | os.X_OK):
+        raise GradfenceInputError(f"{option} {path}: the folder {folder} is not writable.")
+    if path.exists() and not os.access(path, os.W_OK):
+        raise GradfenceInputError(f"{option} {path}: the file is not writable.")

@@ -8,6 +8,7 @@ from pathlib import Path
 
 from core.errors import GradfenceInputError
 from core.scenario import Scenario, load_scenario, save_scenario
+from core.study_file import is_study
 from core.userdata import data_home
 
 
@@ -40,7 +41,7 @@ def list_presets() -> list[PresetInfo]:
         if not folder.is_dir():
             continue
         for path in sorted(folder.glob("*.toml")):
-            if path.name.endswith(".notebook.toml"):
+            if is_study(path):
                 continue
             try:
                 found.append(PresetInfo(path, shipped, load_scenario(path)))

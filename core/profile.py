@@ -14,14 +14,19 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import torch
 
-from core.engine import Engine, Member, StackPass
-from core.results import collect
+from core.formats import json_ready, number_from_json
+from core.member import Member
+from core.methods import BATCH_NORM, EXAMPLE_NORM
 from core.scenario import ClipConfig, Scenario
+
+if TYPE_CHECKING:  # torch loads only when a profile is computed, not to read one
+    import torch
+
+    from core.engine import Engine
 
 MAX_EXAMPLES = 4096  # clean rows used for |G|^2 and tr(Sigma): enough for a few per cent
 
@@ -61,7 +66,8 @@ class NormProfile:
         out["predicted_norm"] = [math.sqrt(self.predicted_sq(b)) for b in self.batch_sizes]
         out["noise_scale"] = self.noise_scale
         out["hiding_batch"] = self.hiding_batch
-        return out
+        ready: dict[str, Any] = json_ready(out)
+        return ready
 
     @classmethod
     def from_json(cls, raw: dict[str, Any]) -> NormProfile:
@@ -70,11 +76,11 @@ class NormProfile:
             checkpoint_step=int(raw["checkpoint_step"]),
             examples=int(raw["examples"]),
             population=int(raw["population"]),
-            grad_sq=float(raw["grad_sq"]),
-            trace=float(raw["trace"]),
+            grad_sq=number_from_json(raw["grad_sq"]),
+            trace=number_from_json(raw["trace"]),
             outlier_norm=None if raw["outlier_norm"] is None else float(raw["outlier_norm"]),
             batch_sizes=tuple(int(b) for b in raw["batch_sizes"]),
-            thresholds={str(k): float(v) for k, v in raw["thresholds"].items()},
+            thresholds={str(k): number_from_json(v) for k, v in raw["thresholds"].items()},
         )
 
 
@@ -95,6 +101,10 @@ def profile_sentence(profile: NormProfile) -> str:
 
 def _checkpoint(scenario: Scenario, steps: int) -> Engine:
     """An unclipped member trained for `steps` steps, float64 for the statistics."""
+    import torch
+
+    from core.engine import Engine
+
     s = scenario.with_overrides({"train.steps": max(steps, 1), "train.eval_every": max(steps, 1)})
     engine = Engine(
         s, [Member(ClipConfig(method="none"), scenario.train.seed)], dtype=torch.float64
@@ -107,6 +117,10 @@ def _checkpoint(scenario: Scenario, steps: int) -> Engine:
 
 def _per_example(engine: Engine, rows: np.ndarray) -> tuple[torch.Tensor, torch.Tensor]:
     """Mean gradient (P,) and per-example gradient norms (n,) of the given rows, one pass."""
+    import torch
+
+    from core.engine import StackPass
+
     grad_pass = StackPass(
         engine.arch, engine.members, "mean", engine.scenario.model.exclude_head, engine.dtype
     )
@@ -138,12 +152,12 @@ def norm_profile(scenario: Scenario, checkpoint: int | None = None) -> NormProfi
     outlier_norm = None
     if len(outliers):
         _, out_norms = _per_example(engine, outliers[:MAX_EXAMPLES])
-        finite = out_norms[torch.isfinite(out_norms)]
+        finite = out_norms[out_norms.isfinite()]
         outlier_norm = float(finite.median()) if len(finite) else None
     thresholds = {
         c.display_name: float(c.threshold)
         for c in scenario.clip
-        if c.method in ("global-norm", "microbatch-norm") and c.threshold is not None
+        if c.spec.compares == BATCH_NORM and c.threshold is not None
     }
     return NormProfile(
         checkpoint_step=step,
@@ -152,7 +166,7 @@ def norm_profile(scenario: Scenario, checkpoint: int | None = None) -> NormProfi
         grad_sq=grad_sq,
         trace=trace,
         outlier_norm=outlier_norm,
-        batch_sizes=tuple(sorted(set(scenario.sweep.batch_sizes) | {scenario.train.batch_size})),
+        batch_sizes=tuple(sorted(set(scenario.map.batch_sizes) | {scenario.train.batch_size})),
         thresholds=thresholds,
     )
 
@@ -171,6 +185,9 @@ def suggest_thresholds(
     scenario: Scenario, warmup: int = 50, percentile: float = 90.0
 ) -> list[Suggestion]:
     """Percentile thresholds from an unclipped warm-up, for the norm methods of the scenario."""
+    from core.engine import Engine
+    from core.results import collect
+
     s = scenario.with_overrides({"train.steps": warmup, "train.eval_every": 1})
     engine = Engine(s, [Member(ClipConfig(method="none"), scenario.train.seed)], trace=True)
     result = collect(engine)
@@ -180,9 +197,9 @@ def suggest_thresholds(
     example_norms = example_norms[np.isfinite(example_norms)]
     out = []
     for c in scenario.clip:
-        if c.method == "global-norm":
+        if c.spec.compares == BATCH_NORM:
             values, batch = batch_norms[np.isfinite(batch_norms)], scenario.train.batch_size
-        elif c.method == "example-norm":
+        elif c.spec.compares == EXAMPLE_NORM:
             values, batch = example_norms, None
         else:
             continue

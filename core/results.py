@@ -1,5 +1,6 @@
-"""Run results as arrays, and the files of `gradfence run --out`: metrics.csv, summary.json,
-scenario.toml, and with tracing trace.npz and data.npz, so a run can be replayed elsewhere."""
+"""Training results as arrays, and the files of `gradfence train --out`: metrics.csv,
+members.json, scenario.toml, and with tracing trace.npz and data.npz, so a run can be replayed
+elsewhere."""
 
 from __future__ import annotations
 
@@ -13,12 +14,17 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import torch
 
-from core.engine import Engine, Member, StepRecord, metric_names
+from core.engine import Engine
 from core.fileio import atomic_writer, write_text_atomic
+from core.formats import format_value, json_number
+from core.member import Member, StepRecord, metric_names
 from core.scenario import Scenario, dumps_scenario
 
 MEMBER_COLUMNS = ("member", "method", "threshold", "batch_size", "seed", "step")
+RUN_FILES = ("scenario.toml", "metrics.csv", "members.json")
+TRACE_FILES = ("trace.npz", "data.npz")
 
 
 @dataclass
@@ -32,6 +38,7 @@ class RunResult:
     metrics: dict[str, np.ndarray]
     diverged_at: list[int | None]
     engine: Engine | None = field(default=None, repr=False)
+    single: bool = True  # float32 results: written at float32's precision
 
     @property
     def member_names(self) -> list[str]:
@@ -47,7 +54,8 @@ class RunResult:
         """Each member's value at the last logged step (NaN for a diverged member)."""
         return np.asarray(self.metric(name)[-1])
 
-    def summary(self) -> dict[str, Any]:
+    def members_json(self) -> dict[str, Any]:
+        """The contents of members.json: every member with its final loss."""
         final_loss = self.final("val_loss")
         return {
             "scenario_hash": self.scenario.hash(),
@@ -57,20 +65,16 @@ class RunResult:
                     "member": i,
                     "method": m.method,
                     "label": m.name,
-                    "threshold": _json_float(m.threshold),
+                    "threshold": json_number(m.threshold),
                     "batch_size": self.batch_size,
                     "seed": m.seed,
-                    "final_val_loss": _json_float(float(final_loss[i])),
+                    "final_val_loss": json_number(float(final_loss[i])),
                     "diverged": self.diverged_at[i] is not None,
                     "diverged_at": self.diverged_at[i],
                 }
                 for i, m in enumerate(self.members)
             ],
         }
-
-
-def _json_float(value: float) -> float | None:
-    return None if math.isnan(value) else value
 
 
 def collect(engine: Engine, on_record: Callable[[StepRecord], None] | None = None) -> RunResult:
@@ -92,16 +96,8 @@ def collect(engine: Engine, on_record: Callable[[StepRecord], None] | None = Non
         metrics={n: np.stack(v) for n, v in rows.items()},
         diverged_at=list(engine.diverged_at),
         engine=engine,
+        single=engine.dtype == torch.float32,
     )
-
-
-def format_value(value: float) -> str:
-    """Shortest text that reads back to the same float, so reruns give identical files."""
-    if math.isnan(value):
-        return "nan"
-    if value == int(value) and abs(value) < 1e15:
-        return str(int(value))
-    return repr(float(value))
 
 
 def metrics_csv(results: Iterable[RunResult]) -> str:
@@ -116,7 +112,9 @@ def metrics_csv(results: Iterable[RunResult]) -> str:
             header_written = True
         for i, m in enumerate(result.members):
             for row, step in enumerate(result.steps):
-                values = [format_value(float(result.metrics[n][row, i])) for n in names]
+                values = [
+                    format_value(float(result.metrics[n][row, i]), result.single) for n in names
+                ]
                 threshold = "" if math.isnan(m.threshold) else repr(m.threshold)
                 writer.writerow(
                     [i, m.method, threshold, result.batch_size, m.seed, int(step), *values]
@@ -127,10 +125,10 @@ def metrics_csv(results: Iterable[RunResult]) -> str:
 def write_run(result: RunResult, out: Path, trace: bool = False) -> list[Path]:
     """Write the files of DESIGN section 7 into `out`; returns the paths written."""
     out.mkdir(parents=True, exist_ok=True)
-    written = [out / "scenario.toml", out / "metrics.csv", out / "summary.json"]
+    written = [out / name for name in RUN_FILES]
     write_text_atomic(written[0], dumps_scenario(result.scenario))
     write_text_atomic(written[1], metrics_csv([result]))
-    write_text_atomic(written[2], json.dumps(result.summary(), indent=2) + "\n")
+    write_text_atomic(written[2], json.dumps(result.members_json(), indent=2) + "\n")
     if trace:
         engine = result.engine
         if engine is None or engine.example_norms is None:
@@ -141,7 +139,7 @@ def write_run(result: RunResult, out: Path, trace: bool = False) -> list[Path]:
             for name, tensor in zip(engine.arch.param_names, engine.initial, strict=True):
                 arrays[f"m{i}_init_{name}"] = tensor[i].double().numpy()
             arrays[f"m{i}_example_norms"] = engine.example_norms[i]
-        written += [out / "trace.npz", out / "data.npz"]
+        written += [out / name for name in TRACE_FILES]
         _save_npz(written[3], arrays)
         _save_npz(written[4], engine.dataset.arrays())
     return written

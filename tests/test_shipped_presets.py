@@ -12,7 +12,7 @@ from core import api
 from core.scenario import OUTLIER_KINDS, TASKS, load_scenario
 from tests.conftest import SCENARIOS
 
-PRESETS = sorted(p for p in SCENARIOS.glob("*.toml") if not p.name.endswith(".notebook.toml"))
+PRESETS = sorted(p for p in SCENARIOS.glob("*.toml") if not p.name.endswith(".study.toml"))
 
 
 def test_there_are_presets_for_every_task_and_outlier_kind() -> None:

@@ -1,4 +1,4 @@
-"""Shared fixtures of the app tests: a small notebook in a window, and training it."""
+"""Shared fixtures of the app tests: a small study in a window, and training it."""
 
 from __future__ import annotations
 
@@ -9,14 +9,16 @@ import pytest
 from PySide6 import QtWidgets
 from pytestqt.qtbot import QtBot
 
+from app.autosave import Autosave
+from app.fan_view import FanView
+from app.file_actions import StudyFiles
 from app.main_window import MainWindow
-from app.run_entry_view import RunEntryView
-from core.notebook import load_notebook
-from core.run_model import DONE
+from core.entry_model import TRAINED
+from core.study import Study
 
-NOTEBOOK = """\
-schema = 1
-title = "Test notebook"
+STUDY = """\
+schema = 2
+title = "Test study"
 
 [[entry]]
 kind = "note"
@@ -24,7 +26,7 @@ title = "A note"
 text = "Some *Markdown*."
 
 [[entry]]
-kind = "run"
+kind = "fan"
 title = "Quick blobs"
 [entry.scenario]
 name = "Quick blobs"
@@ -59,33 +61,34 @@ def no_modal_questions(monkeypatch: pytest.MonkeyPatch) -> list[str]:
     recovery copies declined unless a test says otherwise. Returns the questions asked."""
     asked: list[str] = []
 
-    def unsaved(self: MainWindow) -> QtWidgets.QMessageBox.StandardButton:
+    def unsaved(self: StudyFiles) -> QtWidgets.QMessageBox.StandardButton:
         asked.append("unsaved")
         return QtWidgets.QMessageBox.StandardButton.Discard
 
-    def restore(self: MainWindow, found: object) -> bool:
+    def restore(self: Autosave, found: object) -> bool:
         asked.append("restore")
         return False
 
-    monkeypatch.setattr(MainWindow, "ask_unsaved", unsaved)
-    monkeypatch.setattr(MainWindow, "ask_restore", restore)
+    monkeypatch.setattr(StudyFiles, "ask_unsaved", unsaved)
+    monkeypatch.setattr(Autosave, "ask_restore", restore)
     return asked
 
 
 @pytest.fixture
 def window(qtbot: QtBot, tmp_path: Path) -> Iterator[MainWindow]:
-    path = tmp_path / "test.notebook.toml"
-    path.write_text(NOTEBOOK)
-    win = MainWindow(load_notebook(path))
+    path = tmp_path / "test.study.toml"
+    path.write_text(STUDY)
+    win = MainWindow(Study.open(path))
+    win.auto_train = False  # tests train when they say so
     qtbot.addWidget(win)
     win.show()
     yield win
     win.close()  # ends the worker processes; the leak fixture checks that they are gone
 
 
-def trained(qtbot: QtBot, win: MainWindow) -> RunEntryView:
-    view = win.run_views[0]
-    win.run_view(view)
-    qtbot.waitUntil(lambda: view.model.status == DONE, timeout=90_000)
+def trained(qtbot: QtBot, win: MainWindow) -> FanView:
+    view: FanView = win.fan_views[0]
+    win.runner.train(view.model)
+    qtbot.waitUntil(lambda: view.model.status == TRAINED, timeout=90_000)
     win._on_redraw_tick()
     return view

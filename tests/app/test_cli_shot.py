@@ -1,4 +1,4 @@
-"""`gradfence shot`: a notebook run offscreen to a PNG, with its options checked."""
+"""`gradfence shot`: a study trained offscreen to a PNG, with its options checked."""
 
 from __future__ import annotations
 
@@ -8,27 +8,26 @@ import pytest
 from PySide6 import QtGui
 
 from app.cli import main
-from tests.app.conftest import NOTEBOOK
+from tests.app.conftest import STUDY
 
 
 @pytest.fixture
-def notebook(tmp_path: Path) -> Path:
-    path = tmp_path / "shot.notebook.toml"
-    path.write_text(NOTEBOOK)
+def study(tmp_path: Path) -> Path:
+    path = tmp_path / "shot.study.toml"
+    path.write_text(STUDY)
     return path
 
 
-def test_shot_writes_the_window_and_the_presentation_view(notebook: Path, tmp_path: Path) -> None:
+def test_shot_writes_the_window_and_the_presentation_view(study: Path, tmp_path: Path) -> None:
     out = tmp_path / "window.png"
     assert (
-        main(["shot", str(notebook), "--out", str(out), "--size", "1200x900", "--collapse", "1"])
-        == 0
+        main(["shot", str(study), "--out", str(out), "--size", "1200x900", "--collapse", "1"]) == 0
     )
     image = QtGui.QImage(str(out))
     assert (image.width(), image.height()) == (1200, 900)
     slide = tmp_path / "slide.png"
-    args = ["shot", str(notebook), "--out", str(slide), "--entry", "2", "--present"]
-    assert main([*args, "--size", "1000x700"]) == 0  # the run is cached by now: no training
+    args = ["shot", str(study), "--out", str(slide), "--entry", "2", "--present"]
+    assert main([*args, "--size", "1000x700"]) == 0  # the fan is cached by now: no training
     image = QtGui.QImage(str(slide))
     assert (image.width(), image.height()) == (1000, 700)
 
@@ -43,14 +42,14 @@ def test_shot_writes_the_window_and_the_presentation_view(notebook: Path, tmp_pa
     ],
 )
 def test_bad_shot_options_exit_2_with_one_sentence(
-    notebook: Path,
+    study: Path,
     tmp_path: Path,
     capsys: pytest.CaptureFixture[str],
     option: list[str],
     message: str,
 ) -> None:
     out = tmp_path / "never.png"
-    assert main(["shot", str(notebook), "--out", str(out), *option]) == 2
+    assert main(["shot", str(study), "--out", str(out), *option]) == 2
     err = capsys.readouterr().err
     assert message in err and "Traceback" not in err
     assert not out.exists()

@@ -1,4 +1,4 @@
-"""The desktop window, offscreen: entries, live runs in workers, scrubbing, editing."""
+"""The desktop window, offscreen: entries, live training in workers, scrubbing, editing."""
 
 from __future__ import annotations
 
@@ -10,56 +10,56 @@ import pytest
 from pytestqt.qtbot import QtBot
 
 from app.desktop import demo_path
+from app.fan_view import FanView
 from app.main_window import MainWindow
-from app.run_entry_view import RunEntryView
-from app.workers import Task
+from core.entry_model import FAILED, NOT_TRAINED, STOPPED, TRAINED, TRAINING
 from core.fan import fan_factors, member_for
-from core.notebook import load_notebook
-from core.run_model import DONE, FAILED, IDLE, RUNNING, STOPPED
+from core.study import Study
+from core.work import FAN, Job
 from tests.app.conftest import trained
 
 
-def curve_y(view: RunEntryView, label: str, key: str = "loss") -> np.ndarray:
+def curve_y(view: FanView, label: str, key: str = "loss") -> np.ndarray:
     _, y = view.curves[(label, key)].getOriginalDataset()
     return np.asarray(y)
 
 
-def test_the_demo_notebook_opens_without_training(qtbot: QtBot, tmp_path: Path) -> None:
+def test_the_demo_study_opens_without_training(qtbot: QtBot, tmp_path: Path) -> None:
     # A copy without any cached results, as in a fresh clone.
     shipped = shutil.copytree(
         demo_path().parent, tmp_path / "scenarios", ignore=shutil.ignore_patterns("*.results")
     )
-    win = MainWindow(load_notebook(shipped / demo_path().name))
+    win = MainWindow(Study.open(shipped / demo_path().name))
     qtbot.addWidget(win)
     assert win.outline.count() == 5
-    assert len(win.run_views) == 2 and len(win.sweep_views) == 1
-    assert all(v.model.status == IDLE for v in [*win.run_views, *win.sweep_views])
+    assert len(win.fan_views) == 2 and len(win.map_views) == 1
+    assert all(e.status == NOT_TRAINED for e in win.study.trained_entries)
     assert not win.pool.started  # nothing trains, and no worker starts, until asked
     win.close()
 
 
-def test_a_run_entry_trains_in_workers_and_its_plots_fill(qtbot: QtBot, window: MainWindow) -> None:
+def test_a_fan_trains_in_workers_and_its_plots_fill(qtbot: QtBot, window: MainWindow) -> None:
     view = trained(qtbot, window)
     for batch, stack in view.model.stacks.items():
-        assert stack.filled == len(stack.steps) == 16, batch
+        assert (stack.filled == len(stack.steps)).all() and len(stack.steps) == 16, batch
         assert np.isfinite(stack.values["val_loss"]).all()
     assert len(curve_y(view, "global-norm")) == 16
-    assert "finished" in view.status_label.text()
+    assert view.state_label.text() == "trained"
 
 
 def test_stopping_an_entry_ends_its_training(qtbot: QtBot, window: MainWindow) -> None:
-    view = window.run_views[0]
+    view = window.fan_views[0]
     view.model.scenario = view.model.scenario.with_overrides({"train.steps": 4000})
-    window.run_view(view)
-    qtbot.waitUntil(lambda: any(s.filled > 0 for s in view.model.stacks.values()), timeout=60_000)
-    window.stop_view(view)
+    window.runner.train(view.model)
+    qtbot.waitUntil(lambda: any(s.any_filled for s in view.model.stacks.values()), timeout=60_000)
+    window.runner.stop(view.model)
     assert view.model.status == STOPPED
     qtbot.waitUntil(lambda: not window.pool.busy, timeout=10_000)
     qtbot.wait(300)
-    counts = [s.filled for s in view.model.stacks.values()]
+    counts = [int(s.filled.sum()) for s in view.model.stacks.values()]
     qtbot.wait(500)
-    assert [s.filled for s in view.model.stacks.values()] == counts  # nothing more arrives
-    assert max(counts) < 800
+    assert [int(s.filled.sum()) for s in view.model.stacks.values()] == counts  # nothing more
+    assert max(int(s.filled.max()) for s in view.model.stacks.values()) < 800
 
 
 def test_the_threshold_slider_switches_the_plotted_member(qtbot: QtBot, window: MainWindow) -> None:
@@ -90,22 +90,22 @@ def test_the_batch_size_selector_switches_the_plotted_stack(
         np.testing.assert_array_equal(
             curve_y(view, "example-norm"), stack.values["val_loss"][:, member]
         )
-        assert f"batch size {batch}" in view.readout.text()
+        assert f"Batch size {batch}" in view.readout.text()
 
 
 def test_invalid_toml_shows_the_error_and_keeps_the_last_valid_scenario(window: MainWindow) -> None:
     editor = window.inspector.widget(1)
-    before = window.run_views[0].model.scenario
+    before = window.fan_views[0].model.scenario
     editor.editor.setPlainText("[train]\nsteps = -3\n")
     assert not editor.validate()
     assert "train.steps" in editor.status.text() and "last valid" in editor.status.text()
-    assert window.run_views[0].model.scenario == before
+    assert window.fan_views[0].model.scenario == before
     editor.editor.setPlainText("[train]\nsteps = 30\n")
     assert editor.validate()
-    assert window.run_views[0].model.scenario.train.steps == 30
+    assert window.fan_views[0].model.scenario.train.steps == 30
 
 
-def test_a_form_edit_changes_the_scenario_and_marks_results_stale(
+def test_a_form_edit_changes_the_scenario_and_marks_its_results_as_edited_since(
     qtbot: QtBot, window: MainWindow
 ) -> None:
     view = trained(qtbot, window)
@@ -114,7 +114,7 @@ def test_a_form_edit_changes_the_scenario_and_marks_results_stale(
     lr.setText("0.05")
     lr.editingFinished.emit()
     assert view.model.scenario.train.lr == 0.05
-    assert view.model.stale and "stale" in view.status_label.text()
+    assert view.model.edited and view.state_label.text() == "edited since these results"
     noise = form.widgets["data.noise"]
     noise.setText("-1")  # out of range: the validator's sentence shows, nothing changes
     noise.editingFinished.emit()
@@ -125,16 +125,17 @@ def test_a_form_edit_changes_the_scenario_and_marks_results_stale(
 def test_a_failing_run_shows_in_its_entry_and_the_app_lives_on(
     qtbot: QtBot, window: MainWindow
 ) -> None:
-    view = window.run_views[0]
+    view = window.fan_views[0]
     view.model.begin(run_id=999)
     window.pool.submit(
-        Task(999, 16, "not = [valid", []),
+        Job(999, FAN, "not = [valid", 16, (0,)),
         lambda kind, rid, batch, payload: (
             view.model.fail(rid, str(payload)) if kind == "error" else None
         ),
     )
     qtbot.waitUntil(lambda: view.model.status == FAILED, timeout=60_000)
-    assert "failed" in view.status_label.text()
+    window._on_redraw_tick()
+    assert view.state_label.text().startswith("failed: ")
     view.model.reset()
     trained(qtbot, window)  # the same workers still train
-    assert view.model.status == DONE and view.model.status != RUNNING
+    assert view.model.status == TRAINED and view.model.status != TRAINING

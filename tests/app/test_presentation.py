@@ -5,11 +5,11 @@ from __future__ import annotations
 from PySide6 import QtCore
 from pytestqt.qtbot import QtBot
 
+from app.fan_view import FanView
 from app.main_window import MainWindow
 from app.note_view import NoteView
 from app.presentation import TITLE_PT, PresentationWindow
-from app.run_entry_view import RunEntryView
-from core.run_model import DONE
+from core.entry_model import TRAINED
 
 
 def test_arrow_keys_move_through_the_entries_and_escape_leaves(
@@ -22,10 +22,10 @@ def test_arrow_keys_move_through_the_entries_and_escape_leaves(
     assert shown.title_label.text() == "A note" and shown.title_label.font().pointSize() == TITLE_PT
     assert shown.position_label.text() == "note - 1 / 2"
     qtbot.keyClick(shown, QtCore.Qt.Key.Key_Right)
-    assert shown.index == 1 and isinstance(shown.views[1], RunEntryView)
+    assert shown.index == 1 and isinstance(shown.views[1], FanView)
     assert shown.title_label.text() == "Quick blobs"
     run_view = shown.views[1]
-    assert isinstance(run_view, RunEntryView)
+    assert isinstance(run_view, FanView)
     before = run_view.slider.value()
     qtbot.keyClick(run_view.slider, QtCore.Qt.Key.Key_Left)  # the entry's slider has focus
     assert shown.index == 0 and run_view.slider.value() == before
@@ -40,15 +40,15 @@ def test_arrow_keys_move_through_the_entries_and_escape_leaves(
     qtbot.waitUntil(lambda: window.presentation is None)
 
 
-def test_a_run_started_from_the_presentation_fills_its_plots_there(
+def test_a_fan_trained_from_the_presentation_fills_its_plots_there(
     qtbot: QtBot, window: MainWindow
 ) -> None:
     window.select_card(window.cards[1])
     shown: PresentationWindow = window.present(full_screen=False)
     view = shown.views[1]
-    assert isinstance(view, RunEntryView) and view.model is window.run_views[0].model
-    view.run_button.click()
-    qtbot.waitUntil(lambda: view.model.status == DONE, timeout=90_000)
+    assert isinstance(view, FanView) and view.model is window.fan_views[0].model
+    view.train_button.click()
+    qtbot.waitUntil(lambda: view.model.status == TRAINED, timeout=90_000)
     window._on_redraw_tick()
     x, _ = view.curves[("global-norm", "loss")].getOriginalDataset()
     assert x is not None and len(x) == 16

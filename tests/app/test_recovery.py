@@ -12,26 +12,28 @@ from pathlib import Path
 import pytest
 from pytestqt.qtbot import QtBot
 
+from app.autosave import Autosave
 from app.desktop import open_window
 from app.main_window import MainWindow
-from core.notebook import load_notebook
+from core.study import Study
+from core.study_file import load_study
 from core.userdata import Recovery, find_recovery
-from tests.app.conftest import NOTEBOOK
+from tests.app.conftest import STUDY
 from tests.conftest import REPO
 
 EDIT = "An edit that was never saved"
 
-# The first session: the real window on the notebook, one note added through its own editor,
+# The first session: the real window on the study, one note added through its own editor,
 # then the event loop, which autosaves, until the test kills the process.
 FIRST_SESSION = f"""
 import sys
 from pathlib import Path
 from PySide6 import QtWidgets
 from app.desktop import open_window
-from core.notebook import load_notebook
+from core.study import Study
 
 app = QtWidgets.QApplication([])
-window = open_window(load_notebook(Path(sys.argv[1])))
+window = open_window(Study.open(Path(sys.argv[1])))
 card = window.add_note()
 card.body.text_edit.setPlainText({EDIT!r})
 card.body.finish_editing()
@@ -44,8 +46,8 @@ app.exec()
 def test_a_killed_app_offers_its_autosaved_edit_on_the_next_start(
     qtbot: QtBot, tmp_path: Path, private_home: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    path = tmp_path / "crash.notebook.toml"
-    path.write_text(NOTEBOOK)
+    path = tmp_path / "crash.study.toml"
+    path.write_text(STUDY)
     env = {
         **os.environ,
         "QT_QPA_PLATFORM": "offscreen",
@@ -78,64 +80,65 @@ def test_a_killed_app_offers_its_autosaved_edit_on_the_next_start(
 
     offered: list[Recovery] = []
 
-    def accept(self: MainWindow, recovery: Recovery) -> bool:
+    def accept(self: Autosave, recovery: Recovery) -> bool:
         offered.append(recovery)
         return True
 
-    monkeypatch.setattr(MainWindow, "ask_restore", accept)
-    window = open_window(load_notebook(path))
+    monkeypatch.setattr(Autosave, "ask_restore", accept)
+    window = open_window(Study.open(path))
     qtbot.addWidget(window)
-    assert len(offered) == 1 and offered[0].notebook == path.resolve()
-    texts = [e.text for e in window.current_notebook().entries if e.kind == "note"]
+    assert len(offered) == 1 and offered[0].study == path.resolve()
+    texts = [e.text for e in window.study.to_file().entries if e.kind == "note"]
     assert EDIT in texts
-    assert window.is_modified() and window.windowTitle().endswith("*")
-    assert window.save()
+    assert window.study.modified and window.windowTitle().endswith("*")
+    assert window.files.save()
     assert find_recovery(path) is None  # saved: nothing left to offer
-    assert EDIT in [e.text for e in load_notebook(path).entries]
+    assert EDIT in [e.text for e in load_study(path).entries]
     window.close()
 
 
 def test_declining_the_offer_drops_the_copy_and_the_file_is_untouched(
     qtbot: QtBot, tmp_path: Path, no_modal_questions: list[str]
 ) -> None:
-    path = tmp_path / "nb.notebook.toml"
-    path.write_text(NOTEBOOK)
-    first = MainWindow(load_notebook(path))
+    path = tmp_path / "nb.study.toml"
+    path.write_text(STUDY)
+    first = MainWindow(Study.open(path))
     qtbot.addWidget(first)
     first.add_note().body.finish_editing()  # type: ignore[union-attr]
-    assert first.autosave() is not None
-    assert first.autosave() is None  # unchanged since the last copy: not written again
+    assert first.autosave.save_copy() is not None
+    assert first.autosave.save_copy() is None  # unchanged since the last copy: not written again
     first.pool.shutdown()  # as if the process died here: no close, no prompt
-    second = open_window(load_notebook(path))
+    second = open_window(Study.open(path))
     qtbot.addWidget(second)
     assert no_modal_questions == ["restore"]
     assert find_recovery(path) is None
-    assert len(second.cards) == 2 and path.read_text() == NOTEBOOK
+    assert len(second.cards) == 2 and path.read_text() == STUDY
     second.close()
-    first._autosave_timer.stop()
+    first.autosave.stop()
 
 
-def test_a_never_saved_notebook_is_offered_back_at_the_next_start(
+def test_a_never_saved_study_is_offered_back_at_the_next_start(
     qtbot: QtBot, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    path = tmp_path / "nb.notebook.toml"
-    path.write_text(NOTEBOOK)
-    first = MainWindow(load_notebook(path))
+    path = tmp_path / "nb.study.toml"
+    path.write_text(STUDY)
+    first = MainWindow(Study.open(path))
     qtbot.addWidget(first)
-    first.new_notebook()
+    first.files.new_study()
     card = first.add_note()
     card.body.text_edit.setPlainText(EDIT)  # type: ignore[union-attr]
     card.body.finish_editing()  # type: ignore[union-attr]
-    assert first.autosave() is not None and find_recovery(None) is not None
+    assert first.autosave.save_copy() is not None and find_recovery(None) is not None
     first.pool.shutdown()
 
     offered: list[Recovery] = []
-    monkeypatch.setattr(MainWindow, "ask_restore", lambda self, r: offered.append(r) or True)
-    second = open_window(load_notebook(path))
+    monkeypatch.setattr(Autosave, "ask_restore", lambda self, r: offered.append(r) or True)
+    second = open_window(Study.open(path))
     qtbot.addWidget(second)
-    assert [r.notebook for r in offered] == [None]
-    assert second.path is None and [c.model.text for c in second.cards] == [EDIT]  # type: ignore[union-attr]
-    assert second.is_modified()
+    assert [r.study for r in offered] == [None]
+    texts = [c.model.text for c in second.cards]  # type: ignore[union-attr]
+    assert second.study.path is None and texts == [EDIT]
+    assert second.study.modified
     second.close()  # the conftest answers "discard": the copy goes
     assert find_recovery(None) is None
-    first._autosave_timer.stop()
+    first.autosave.stop()

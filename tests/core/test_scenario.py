@@ -24,7 +24,7 @@ from core.scenario import (
 )
 
 VALID = """\
-schema = 1
+schema = 2
 name = "A test preset"
 
 [data]
@@ -83,7 +83,7 @@ def test_out_of_range_value_states_the_allowed_range(
 ) -> None:
     code, err = check_file(tmp_path, VALID.replace("threshold = 0.5", "threshold = -1.0"), capsys)
     assert code == 2
-    assert "clip[0].threshold = -1 is out of range" in err and "greater than 0" in err
+    assert "clip[0].threshold = -1 is out of range" in err and "at least 1e-09" in err
     assert_one_sentence(err)
 
 
@@ -119,9 +119,9 @@ def test_missing_file_is_reported_as_bad_input(
 def test_unsupported_schema_names_the_supported_one(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    code, err = check_file(tmp_path, VALID.replace("schema = 1", "schema = 2"), capsys)
+    code, err = check_file(tmp_path, VALID.replace("schema = 2", "schema = 3"), capsys)
     assert code == 2
-    assert "schema = 2 is not supported" in err and "schema = 1" in err
+    assert "schema = 3 is not supported" in err and "schema = 2" in err
     assert_one_sentence(err)
 
 
@@ -156,8 +156,8 @@ def test_method_default_thresholds_are_resolved() -> None:
 
 
 def test_threshold_grid_table_becomes_a_log_spaced_list() -> None:
-    scenario = loads_scenario("[sweep]\nthresholds = {min = 0.01, max = 1.0, count = 3}\n")
-    assert scenario.sweep.thresholds == pytest.approx((0.01, 0.1, 1.0))
+    scenario = loads_scenario("[map]\nthresholds = {min = 0.01, max = 1.0, count = 3}\n")
+    assert scenario.map.thresholds == pytest.approx((0.01, 0.1, 1.0))
 
 
 def test_save_and_load_round_trip(tmp_path: Path) -> None:
@@ -214,13 +214,13 @@ def test_hash_is_stable_and_ignores_name_and_notes() -> None:
 # The loader never fails with anything but its own error type, whatever the mutation.
 
 BASE: dict[str, Any] = {
-    "schema": 1,
+    "schema": 2,
     "data": {"task": "moons", "n_train": 300, "noise": 0.1},
     "outliers": {"kind": "label-flip", "placement": "batch", "rate": 0.2, "count": 2},
     "model": {"hidden": [16, 16], "activation": "relu"},
     "train": {"steps": 50, "batch_size": 16, "lr": 0.1, "momentum": 0.5},
     "clip": [{"method": "example-norm", "threshold": 1.0}, {"method": "microbatch-norm"}],
-    "sweep": {"batch_sizes": [8, 16], "thresholds": {"min": 0.1, "max": 10.0, "count": 3}},
+    "map": {"batch_sizes": [8, 16], "thresholds": {"min": 0.1, "max": 10.0, "count": 3}},
 }
 
 values = st.one_of(

@@ -1,4 +1,4 @@
-"""Sweeps: the grid, the files, resuming, and the batch-size coupling they are for."""
+"""Maps: the grid, the files, resuming, and the batch-size coupling they are for."""
 
 from __future__ import annotations
 
@@ -15,15 +15,15 @@ import pytest
 
 from core.analysis import analyse, stability_map
 from core.engine import Engine, Member
+from core.maps import MapProgress, plan, read_table, run_map
 from core.profile import norm_profile
 from core.results import collect
 from core.scenario import ClipConfig, load_scenario, parse_scenario
-from core.sweep import SweepProgress, plan, read_table, run_sweep
 from tests.conftest import REPO, SCENARIOS
 
 SMALL = """\
-schema = 1
-name = "Small sweep"
+schema = 2
+name = "Small map"
 
 [data]
 task = "linear"
@@ -53,7 +53,7 @@ method = "global-norm"
 [[clip]]
 method = "example-norm"
 
-[sweep]
+[map]
 batch_sizes = [8, 16, 32]
 seeds = [0, 1]
 thresholds = {min = 0.01, max = 10.0, count = 4}
@@ -62,12 +62,12 @@ thresholds = {min = 0.01, max = 10.0, count = 4}
 
 def test_the_table_has_exactly_one_row_per_grid_point(tmp_path: Path) -> None:
     scenario = parse_scenario(__import__("tomllib").loads(SMALL))
-    rows = run_sweep(scenario, tmp_path, jobs=1)
+    rows = run_map(scenario, tmp_path, jobs=1)
     keys = [(r["label"], r["threshold"], r["batch_size"], r["seed"]) for r in rows]
     # none: 1 point per batch size and seed; the two methods: 4 thresholds each.
     assert len(rows) == 3 * 2 * (1 + 4 + 4)
     assert len({(k[0], "nan" if math.isnan(k[1]) else k[1], k[2], k[3]) for k in keys}) == len(rows)
-    on_file = read_table(tmp_path / "sweep.csv")
+    on_file = read_table(tmp_path / "map.csv")
     assert [r["label"] for r in on_file] == [r["label"] for r in rows]
     for a, b in zip(on_file, rows, strict=True):
         for column in ("final_val_loss", "clipped_share", "threshold"):
@@ -76,14 +76,14 @@ def test_the_table_has_exactly_one_row_per_grid_point(tmp_path: Path) -> None:
 
 def test_results_do_not_depend_on_the_number_of_workers(tmp_path: Path) -> None:
     scenario = parse_scenario(__import__("tomllib").loads(SMALL))
-    run_sweep(scenario, tmp_path / "one", jobs=1)
-    run_sweep(scenario, tmp_path / "two", jobs=2)
-    assert (tmp_path / "one" / "sweep.csv").read_bytes() == (
-        tmp_path / "two" / "sweep.csv"
+    run_map(scenario, tmp_path / "one", jobs=1)
+    run_map(scenario, tmp_path / "two", jobs=2)
+    assert (tmp_path / "one" / "map.csv").read_bytes() == (
+        tmp_path / "two" / "map.csv"
     ).read_bytes()
 
 
-def test_a_sweep_stopped_half_way_resumes_to_the_same_table(tmp_path: Path) -> None:
+def test_a_map_stopped_half_way_resumes_to_the_same_table(tmp_path: Path) -> None:
     preset = tmp_path / "small.toml"
     preset.write_text(SMALL)
     scenario = load_scenario(preset)
@@ -95,7 +95,7 @@ def test_a_sweep_stopped_half_way_resumes_to_the_same_table(tmp_path: Path) -> N
             sys.executable,
             "-m",
             "app.cli",
-            "sweep",
+            "map",
             str(preset),
             "--out",
             str(stopped),
@@ -107,7 +107,7 @@ def test_a_sweep_stopped_half_way_resumes_to_the_same_table(tmp_path: Path) -> N
         stderr=subprocess.PIPE,
         text=True,
     )
-    table = stopped / "sweep.csv"
+    table = stopped / "map.csv"
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline:  # wait for the first stack's rows, then press Ctrl-C
         if table.exists() and len(table.read_text().splitlines()) > 1:
@@ -119,16 +119,16 @@ def test_a_sweep_stopped_half_way_resumes_to_the_same_table(tmp_path: Path) -> N
     done_before = len(read_table(table))
     assert 0 < done_before < 54
 
-    progress: list[SweepProgress] = []
-    run_sweep(scenario, stopped, jobs=1, resume=True, on_progress=lambda p: progress.append(p))
+    progress: list[MapProgress] = []
+    run_map(scenario, stopped, jobs=1, resume=True, on_progress=lambda p: progress.append(p))
     resumed_done = progress[0].done
     assert progress[-1].computed == total - resumed_done  # nothing finished is computed again
     assert resumed_done >= 1
-    run_sweep(scenario, tmp_path / "whole", jobs=1)
-    assert table.read_bytes() == (tmp_path / "whole" / "sweep.csv").read_bytes()
+    run_map(scenario, tmp_path / "whole", jobs=1)
+    assert table.read_bytes() == (tmp_path / "whole" / "map.csv").read_bytes()
 
 
-def test_a_sweep_killed_mid_write_resumes_to_the_same_table(tmp_path: Path) -> None:
+def test_a_map_killed_mid_write_resumes_to_the_same_table(tmp_path: Path) -> None:
     preset = tmp_path / "small.toml"
     preset.write_text(SMALL)
     scenario = load_scenario(preset)
@@ -139,7 +139,7 @@ def test_a_sweep_killed_mid_write_resumes_to_the_same_table(tmp_path: Path) -> N
             sys.executable,
             "-m",
             "app.cli",
-            "sweep",
+            "map",
             str(preset),
             "--out",
             str(killed),
@@ -150,7 +150,7 @@ def test_a_sweep_killed_mid_write_resumes_to_the_same_table(tmp_path: Path) -> N
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
     )
-    table = killed / "sweep.csv"
+    table = killed / "map.csv"
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline:
         if table.exists() and len(table.read_text().splitlines()) > 1:
@@ -160,20 +160,20 @@ def test_a_sweep_killed_mid_write_resumes_to_the_same_table(tmp_path: Path) -> N
     process.wait(timeout=30)
     with table.open("a") as f:  # as if the kill had landed in the middle of an append
         f.write("global-norm,global-norm,0.1,32,0,0.52")
-    progress: list[SweepProgress] = []
-    run_sweep(scenario, killed, jobs=1, resume=True, on_progress=progress.append)
+    progress: list[MapProgress] = []
+    run_map(scenario, killed, jobs=1, resume=True, on_progress=progress.append)
     assert progress[-1].computed == progress[-1].total - progress[0].done
-    run_sweep(scenario, tmp_path / "whole", jobs=1)
-    assert table.read_bytes() == (tmp_path / "whole" / "sweep.csv").read_bytes()
+    run_map(scenario, tmp_path / "whole", jobs=1)
+    assert table.read_bytes() == (tmp_path / "whole" / "map.csv").read_bytes()
 
 
 def test_resuming_with_a_changed_scenario_is_refused(tmp_path: Path) -> None:
     from core.errors import GradfenceInputError
 
     scenario = parse_scenario(__import__("tomllib").loads(SMALL))
-    run_sweep(scenario, tmp_path, jobs=1)
+    run_map(scenario, tmp_path, jobs=1)
     with pytest.raises(GradfenceInputError, match="another scenario"):
-        run_sweep(scenario.with_overrides({"train.lr": 0.03}), tmp_path, jobs=1, resume=True)
+        run_map(scenario.with_overrides({"train.lr": 0.03}), tmp_path, jobs=1, resume=True)
 
 
 @pytest.mark.slow
@@ -184,8 +184,8 @@ def test_the_coupling_preset_couples_global_norm_to_the_batch_size_and_not_examp
     # threshold of batch-mean clipping falls as the batch size grows; per-example clipping
     # shows no such trend.
     scenario = load_scenario(SCENARIOS / "batch-size-coupling.toml")
-    rows = run_sweep(scenario, tmp_path, jobs=2)
-    results = analyse(rows, scenario.sweep.tolerance)
+    rows = run_map(scenario, tmp_path, jobs=2)
+    results = analyse(rows, scenario.map.tolerance)
     global_norm, example_norm = results["global-norm"], results["example-norm"]
     assert global_norm.lower_slope is not None and global_norm.lower_slope < -0.1
     assert global_norm.common is None
@@ -210,7 +210,7 @@ NOISY = {
     "model": {"kind": "linear"},
     "train": {"steps": 300, "lr": 0.02},
     "clip": [{"method": "global-norm"}, {"method": "example-norm"}],
-    "sweep": {
+    "map": {
         "batch_sizes": [8, 32, 128, 512],
         "seeds": [0, 1],
         "thresholds": {"min": 0.01, "max": 100.0, "count": 13},
@@ -225,7 +225,7 @@ def test_clip_onset_falls_as_root_b_for_global_norm_and_stays_for_example_norm(
     # From E|g_B|^2 = |G|^2 + tr(Sigma)/B (REFERENCES.md, closed form): where the noise term
     # dominates, the median batch-mean norm, hence the onset, goes as B^-1/2 (derived bound:
     # slope between -0.7 and -0.3); a per-example norm does not depend on B.
-    rows = run_sweep(parse_scenario(NOISY), tmp_path, jobs=2)
+    rows = run_map(parse_scenario(NOISY), tmp_path, jobs=2)
     results = analyse(rows)
     assert results["global-norm"].onset_slope is not None
     assert -0.7 < results["global-norm"].onset_slope < -0.3

@@ -1,9 +1,9 @@
-"""A notebook as one self-contained HTML file: notes, each entry's scenario, plots and summary.
+"""A study as one self-contained HTML file: notes, each entry's plots, tables and scenario.
 
-Images are PNGs embedded as data: URIs and the style sheet is inline, so the file opens anywhere
-with nothing fetched. The plots are the app's own (the same views, exported), so a report shows
-what a teammate would see in the window. Entries whose cached results match their scenario hash
-are used as they are; the rest are run first, with progress shown.
+It is built from the study itself: each entry's view is made on its own, offscreen (never a
+window), and its plots are exported as PNG data: URIs; the style sheet is inline, so the file
+opens anywhere with nothing fetched. Entries whose cached results match their scenario are used
+as they are; the rest are trained first through the runner, with progress shown.
 """
 
 from __future__ import annotations
@@ -14,35 +14,39 @@ import html
 import math
 import re
 import sys
-import time
 from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
-from PySide6 import QtCore, QtGui
+from PySide6 import QtCore, QtGui, QtWidgets
 
-from app.entry_card import EntryCard
-from app.main_window import MainWindow
-from app.run_entry_view import RunEntryView
-from app.sweep_entry_view import SweepEntryView
+from app.axes import tick_text
+from app.fan_view import FanView
+from app.map_view import MapView
+from app.views import make_view
 from core import __version__
 from core.analysis import sentence
+from core.entry_model import FAILED, NoteModel
 from core.fan import member_for
+from core.fan_model import FanModel
 from core.fileio import write_text_atomic
+from core.map_model import MapModel
 from core.profile import profile_sentence
-from core.run_model import DONE, FAILED, RUNNING, STOPPED, NoteEntryModel
 from core.scenario import dumps_scenario
+from core.study import Study
 
 STYLE = """
 body { font-family: "DejaVu Sans", "Helvetica Neue", Arial, sans-serif; color: #1d1d1d;
        max-width: 1100px; margin: 2em auto; padding: 0 1.5em; line-height: 1.45; }
 h1 { font-size: 1.9em; margin-bottom: 0.1em; }
-h2 { font-size: 1.35em; margin-top: 2.2em; border-bottom: 1px solid #cccccc;
-     padding-bottom: 0.2em; }
-.kind { font-size: 0.7em; color: #ffffff; background: #5a5a5a; border-radius: 3px;
-        padding: 1px 6px; vertical-align: middle; margin-right: 0.5em; }
-.meta { color: #555555; font-size: 0.9em; }
-.note { background: #f6f6f4; border-left: 4px solid #999999; padding: 0.4em 1em; }
+h2 { font-size: 1.35em; margin-top: 2.2em; padding: 0.15em 0 0.15em 0.6em; }
+h2.note { border-left: 6px solid #b8a98a; }
+h2.fan { border-left: 6px solid #2f7f8f; }
+h2.map { border-left: 6px solid #6e4c9a; }
+.kind { font-size: 0.7em; font-weight: bold; margin-right: 0.5em; }
+.headline { color: #555555; font-size: 0.95em; margin-top: -0.4em; }
+.small { color: #777777; font-size: 0.8em; }
+.note { background: #f6f4ef; padding: 0.4em 1em; }
 img { max-width: 100%; border: 1px solid #dddddd; }
 table { border-collapse: collapse; margin: 0.8em 0; font-size: 0.92em; }
 th, td { border: 1px solid #cccccc; padding: 3px 8px; text-align: right; }
@@ -50,8 +54,9 @@ th { background: #eeeeee; }
 td:nth-child(-n+2), th:nth-child(-n+2) { text-align: left; }
 details summary { cursor: pointer; color: #333333; }
 pre { background: #f4f4f4; padding: 0.6em; overflow-x: auto; font-size: 0.85em; }
-.warn { color: #a00000; }
+.warn { color: #a33a1e; }
 """
+VIEW_SIZE = (1500, 1100)  # the size a view is laid out at before its plots are exported
 
 Progress = Callable[[float, str], None]
 
@@ -75,13 +80,17 @@ def png_data_uri(image: QtGui.QImage) -> str:
     return "data:image/png;base64," + base64.b64encode(data).decode("ascii")
 
 
-def _plot_image(view: RunEntryView | SweepEntryView) -> str:
+def _plot_image(view: FanView | MapView) -> str:
     import pyqtgraph.exporters as exporters
 
     exporter = exporters.ImageExporter(view.canvas.ci)
     exporter.parameters()["width"] = 1600
-    image = exporter.export(toBytes=True)
-    return png_data_uri(image)
+    return png_data_uri(exporter.export(toBytes=True))
+
+
+def _settle() -> None:
+    for _ in range(3):
+        QtWidgets.QApplication.processEvents()
 
 
 def _mean(values: np.ndarray) -> float:
@@ -101,40 +110,41 @@ def _table(header: list[str], rows: list[list[str]]) -> str:
     return f"<table><tr>{head}</tr>{body}</table>"
 
 
-def run_summary(view: RunEntryView) -> str:
-    """Per batch size and method, at the preset's thresholds: final loss, clipping, outliers."""
-    model = view.model
+def fan_summary(model: FanModel) -> str:
+    """Per batch size and method, the member at the entry's own threshold: final loss,
+    clipping, and what the outliers kept."""
     rows = []
     for batch, stack in sorted(model.stacks.items()):
-        last = stack.filled - 1
         for clip in model.scenario.clip:
             label = clip.display_name
             i = member_for(stack.members, label, 1.0)
+            filled = stack.rows(i)
             values = stack.values
-            passed = values["outlier_pass"][: stack.filled, i]
+            counts = clip.spec.counts if clip.method != "none" else ""
             rows.append(
                 [
                     str(batch),
                     label,
-                    "-" if clip.threshold is None else f"{clip.threshold:g}",
-                    _fmt(float(values["val_loss"][last, i]), 4),
-                    _fmt(_mean(values["clipped_share"][: stack.filled, i])),
-                    _fmt(_mean(passed)),
+                    "-" if clip.threshold is None else tick_text(clip.threshold),
+                    _fmt(float(values["val_loss"][filled - 1, i]), 4) if filled else "-",
+                    f"{_fmt(_mean(values['clipped_share'][:filled, i]))} {counts}".strip(),
+                    _fmt(_mean(values["outlier_pass"][:filled, i])),
+                    _fmt(_mean(values["outlier_share"][:filled, i])),
                 ]
             )
     header = [
         "batch size",
-        "method",
+        "member",
         "threshold",
-        "final val. loss",
-        "clipped share (mean)",
+        "final validation loss",
+        "clipped share (mean, of what it counts)",
         "outlier pass-through (mean)",
+        "outlier share of the update (mean)",
     ]
     return _table(header, rows)
 
 
-def sweep_summary(view: SweepEntryView) -> str:
-    model = view.model
+def map_summary(model: MapModel) -> str:
     lines = [html.escape(sentence(w)) for w in model.results.values()]
     parts = ["<p>" + "<br>".join(lines) + "</p>"]
     rows = []
@@ -144,79 +154,76 @@ def sweep_summary(view: SweepEntryView) -> str:
                 rows.append([result.label, str(w.batch_size), "none", "none"])
                 continue
             # At the end of the grid tried, a window may reach further: <= and >= say so.
-            lower = ("<= " if w.at_lower_edge else "") + f"{w.lower:.3g}"
-            upper = (">= " if w.at_upper_edge else "") + f"{w.upper:.3g}"
+            lower = ("<= " if w.at_lower_edge else "") + tick_text(w.lower)
+            upper = (">= " if w.at_upper_edge else "") + tick_text(w.upper)
             rows.append([result.label, str(w.batch_size), lower, upper])
         if result.common is None:
             rows.append([result.label, "every size: none", "", ""])
         else:
             low, high = result.common
-            rows.append([result.label, "every size", f"{low:.3g}", f"{high:.3g}"])
+            rows.append([result.label, "every size", tick_text(low), tick_text(high)])
     parts.append(_table(["method", "batch size", "window from", "window to"], rows))
     if model.profile is not None:
         parts.append(f"<p>{html.escape(profile_sentence(model.profile))}</p>")
     return "".join(parts)
 
 
-def _entry_html(index: int, card: EntryCard) -> str:
-    model = card.model
+def entry_html(index: int, model: object) -> str:
+    """One entry: its heading, then its note, or its plots, tables and scenario."""
+    if not isinstance(model, NoteModel | FanModel | MapModel):
+        raise TypeError(f"no handout form for {type(model).__name__}")
     title = html.escape(model.title)
-    head = f'<h2 id="entry-{index}"><span class="kind">{card.kind}</span>{title}</h2>'
-    if isinstance(model, NoteEntryModel):
-        return head + f'<div class="note">{markdown_html(model.text)}</div>'
-    view = card.body
-    assert isinstance(view, RunEntryView | SweepEntryView)
-    parts = [head]
-    scenario = model.scenario
-    parts.append(
-        f'<p class="meta">scenario "{html.escape(scenario.name)}", hash {scenario.hash()}</p>'
+    head = (
+        f'<h2 class="{model.kind}" id="entry-{index}"><span class="kind">{model.kind}</span>'
+        f"{title}</h2>"
     )
-    if model.status != DONE or model.stale:
-        reason = {FAILED: "it failed", STOPPED: "it was stopped", RUNNING: "it did not finish"}
-        why = reason.get(model.status, "it was not run")
-        parts.append(f'<p class="warn">No results: {why}.</p>')
-    elif isinstance(view, RunEntryView):
-        view.refresh()
-        parts.append(f'<img alt="{title}: plots" src="{_plot_image(view)}">')
-        parts.append(run_summary(view))
+    if isinstance(model, NoteModel):
+        return head + f'<div class="note">{markdown_html(model.text)}</div>'
+    parts = [head]
+    if not model.has_current_results():
+        parts.append(f'<p class="warn">No results: {html.escape(model.state_text())}.</p>')
     else:
-        view.show_results()
+        view = make_view(model, editable=False)
+        assert isinstance(view, FanView | MapView)
+        view.setAttribute(QtCore.Qt.WidgetAttribute.WA_DontShowOnScreen)
+        view.resize(*VIEW_SIZE)
+        view.show()  # laid out offscreen, on its own: no window is built for a handout
+        _settle()
+        view.refresh()
+        if isinstance(view, MapView):
+            view.show_results()
+        _settle()
+        parts.append(f'<p class="headline">{html.escape(view.headline())}</p>')
         parts.append(f'<img alt="{title}: plots" src="{_plot_image(view)}">')
-        parts.append(sweep_summary(view))
+        parts.append(fan_summary(model) if isinstance(model, FanModel) else map_summary(model))
+        view.detach()
+        view.close()
+        view.deleteLater()
+    scenario = model.scenario
     toml = html.escape(dumps_scenario(scenario))
     parts.append(f"<details><summary>Scenario as TOML</summary><pre>{toml}</pre></details>")
+    parts.append(
+        f'<p class="small">scenario "{html.escape(scenario.name)}", hash {scenario.hash()}</p>'
+    )
     return "\n".join(parts)
 
 
-def report_html(window: MainWindow) -> str:
-    """The report of what the window holds now."""
-    title = html.escape(window.notebook_title)
+def handout_html(study: Study) -> str:
+    """The handout of what the study holds now."""
+    title = html.escape(study.title)
     when = datetime.datetime.now().astimezone().strftime("%Y-%m-%d %H:%M %Z")
-    source = html.escape(str(window.path)) if window.path else "an unsaved notebook"
-    body = "\n".join(_entry_html(i + 1, c) for i, c in enumerate(window.cards))
+    source = html.escape(str(study.path)) if study.path else "a study never saved"
+    body = "\n".join(entry_html(i + 1, e) for i, e in enumerate(study.entries))
     return (
         "<!DOCTYPE html>\n"
         '<html lang="en"><head><meta charset="utf-8">'
         f"<title>{title}</title><style>{STYLE}</style></head><body>\n"
         f"<h1>{title}</h1>\n"
-        f'<p class="meta">Gradfence {__version__}, {when}; from {source}.</p>\n'
+        f'<p class="small">Gradfence {__version__}, {when}; from {source}.</p>\n'
         f"{body}\n"
-        f'<p class="meta">Made with Gradfence {__version__} on {when}.</p>\n'
+        f'<p class="small">Made with Gradfence {__version__} on {when}.</p>\n'
         "</body></html>\n"
     )
-
-
-def overall_progress(todo: list[RunEntryView | SweepEntryView]) -> float:
-    if not todo:
-        return 1.0
-    shares = []
-    for view in todo:
-        if isinstance(view, RunEntryView):
-            shares.append(view.model.progress() if view.model.status == RUNNING else 1.0)
-        else:
-            m = view.model
-            shares.append(m.chunks_done / max(m.chunks_total, 1) if m.status == RUNNING else 1.0)
-    return sum(shares) / len(shares)
 
 
 class TerminalProgress:
@@ -238,41 +245,34 @@ class TerminalProgress:
         sys.stderr.flush()
 
 
-def write_report(
-    notebook_path: Path, out: Path, progress: Progress | None = None
+def write_handout(
+    study_path: Path, out: Path, progress: Progress | None = None
 ) -> tuple[int, list[str]]:
-    """`gradfence report`: run what is not cached, then write the HTML file. Returns the
+    """`gradfence handout`: train what is not cached, then write the HTML file. Returns the
     number of entries and the titles of those that failed."""
-    import os
+    from app.desktop import application
+    from core.pool import WorkerPool
+    from core.runner import Runner
 
-    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
-    from app.desktop import _application
-    from core.notebook import load_notebook
-
-    notebook = load_notebook(notebook_path)  # bad input fails before anything starts
-    app = _application()
-    window = MainWindow(notebook)
-    window.resize(1500, 1000)
-    window.show()
+    study = Study.open(study_path)  # bad input fails before anything starts
+    for notice in study.notices:
+        print(f"note: {notice}", file=sys.stderr)
+    application()
     report = progress or TerminalProgress()
+    pool = WorkerPool()
+    runner = Runner(study, pool)
     try:
-        todo = window.run_pending()
-        cached = len([*window.run_views, *window.sweep_views]) - len(todo)
-        note = f"{len(todo)} to run, {cached} cached"
-        while not window.all_finished():
-            app.processEvents()  # type: ignore[attr-defined]
-            report(overall_progress(todo), note)
-            time.sleep(0.05)
-        for _ in range(5):
-            app.processEvents()  # type: ignore[attr-defined]
-            time.sleep(0.02)
+        todo = runner.train_pending()
+        cached = len(study.trained_entries) - len(todo)
+        note = f"{len(todo)} to train, {cached} cached"
+        while runner.busy:
+            pool.wait(0.05)
+            report(runner.progress(), note)
         report(1.0, note)
-        write_text_atomic(out, report_html(window))
-        views: list[RunEntryView | SweepEntryView] = [*window.run_views, *window.sweep_views]
-        failed = [v.model.title for v in views if v.model.status == FAILED]
-        count = len(window.cards)
+        text = handout_html(study)
+        failed = [e.title for e in study.trained_entries if e.status == FAILED]
     finally:
-        window.close()
-        window.deleteLater()  # Qt objects go before the interpreter's teardown
-        app.processEvents()  # type: ignore[attr-defined]
-    return count, failed
+        runner.close()
+        pool.shutdown()
+    write_text_atomic(out, text)
+    return len(study), failed

@@ -1,4 +1,4 @@
-"""Sweep entries in the window: run to the end, maps equal the analysis, cancel."""
+"""Map entries in the window: train to the end, maps equal the analysis, stop."""
 
 from __future__ import annotations
 
@@ -11,35 +11,36 @@ from pytestqt.qtbot import QtBot
 
 from app.main_window import MainWindow
 from core.analysis import analyse, stability_map
-from core.notebook import load_notebook
+from core.entry_model import STOPPED, TRAINED
 from core.profile import norm_profile
-from core.sweep_model import DONE, STOPPED
-from tests.core.test_sweep import SMALL
+from core.study import Study
+from tests.core.test_maps import SMALL
 
 
 @pytest.fixture
 def window(qtbot: QtBot, tmp_path: Path) -> Iterator[MainWindow]:
     (tmp_path / "small.toml").write_text(SMALL)
-    path = tmp_path / "sweep.notebook.toml"
+    path = tmp_path / "map.study.toml"
     path.write_text(
-        'title = "S"\n[[entry]]\nkind = "sweep"\ntitle = "Small sweep"\npreset = "small.toml"\n'
+        'title = "S"\n[[entry]]\nkind = "map"\ntitle = "Small map"\npreset = "small.toml"\n'
     )
-    win = MainWindow(load_notebook(path))
+    win = MainWindow(Study.open(path))
+    win.auto_train = False
     qtbot.addWidget(win)
     win.show()
     yield win
     win.close()
 
 
-def test_a_sweep_entry_runs_to_the_end_and_its_maps_are_the_analysis_table(
+def test_a_map_entry_trains_to_the_end_and_its_maps_are_the_analysis_table(
     qtbot: QtBot, window: MainWindow
 ) -> None:
-    view = window.sweep_views[0]
-    window.run_sweep(view)
-    qtbot.waitUntil(lambda: view.model.status == DONE, timeout=120_000)
+    view = window.map_views[0]
+    window.runner.train(view.model)
+    qtbot.waitUntil(lambda: view.model.status == TRAINED, timeout=120_000)
     rows = view.model.rows
     assert len(rows) == 54
-    results = analyse(rows, view.model.scenario.sweep.tolerance)
+    results = analyse(rows, view.model.scenario.map.tolerance)
     assert set(view.heatmaps) == set(results) == {"global-norm", "example-norm"}
     for label, shown in view.heatmaps.items():
         smap = stability_map(rows, label)
@@ -48,7 +49,7 @@ def test_a_sweep_entry_runs_to_the_end_and_its_maps_are_the_analysis_table(
         assert view.model.results[label].windows == result.windows
     text = view.sentences.text()
     assert "global-norm:" in text and "example-norm:" in text
-    assert "finished" in view.status_label.text()
+    assert view.state_label.text() == "trained"
     # The norm profile came from a worker; it matches one computed here (float64 sums on
     # one thread there, maybe two here: equal to 1e-9).
     profile = view.model.profile
@@ -60,14 +61,16 @@ def test_a_sweep_entry_runs_to_the_end_and_its_maps_are_the_analysis_table(
     assert any("norm profile" in t for t in titles)
 
 
-def test_cancelling_a_sweep_entry_stops_it(qtbot: QtBot, window: MainWindow) -> None:
-    view = window.sweep_views[0]
+def test_stopping_a_map_entry_stops_it(qtbot: QtBot, window: MainWindow) -> None:
+    view = window.map_views[0]
     view.model.scenario = view.model.scenario.with_overrides({"train.steps": 3000})
-    window.run_sweep(view)
-    qtbot.waitUntil(lambda: view.model.chunks_done >= 1, timeout=120_000)
-    window.stop_sweep(view)
-    assert view.model.status == STOPPED and "cancelled" in view.status_label.text()
-    done = view.model.chunks_done
+    window.runner.train(view.model)
+    qtbot.waitUntil(lambda: view.model.members_done >= 1, timeout=120_000)
+    window.runner.stop(view.model)
+    window._on_redraw_tick()
+    assert view.model.status == STOPPED and view.state_label.text() == "stopped"
+    done = view.model.members_done
     qtbot.waitUntil(lambda: not window.pool.busy, timeout=60_000)
     qtbot.wait(300)
-    assert view.model.chunks_done == done < view.model.chunks_total
+    window.pool.poll()
+    assert view.model.members_done == done < view.model.members_total

@@ -1,5 +1,6 @@
-"""Notebook documents in the window: build, save, reopen; undo and redo of every edit; notes
-edited in place; stale results never drawn; results cached by scenario hash; presets."""
+"""Studies in the window: build, save, reopen; undo and redo of every edit; notes edited in
+place; results of an earlier scenario faded, never drawn as current; results cached by scenario
+hash; presets."""
 
 from __future__ import annotations
 
@@ -9,14 +10,16 @@ import numpy as np
 import pytest
 from pytestqt.qtbot import QtBot
 
+from app.file_actions import StudyFiles
 from app.main_window import MainWindow
 from app.note_view import NoteView
 from app.presets_dialog import PresetBrowser
 from app.scenario_form import ScenarioForm
 from core import cache
-from core.notebook import load_notebook
+from core.entry_model import NOT_TRAINED, TRAINED
 from core.presets import list_presets, shipped_dir, user_dir
-from core.run_model import DONE, IDLE
+from core.study import Study
+from core.study_file import load_study
 from tests.app.conftest import trained
 
 
@@ -28,40 +31,40 @@ def titles(win: MainWindow) -> list[str]:
     return [c.model.title for c in win.cards]
 
 
-def test_a_built_notebook_saves_and_reopens_equal(
+def test_a_built_study_saves_and_reopens_equal(
     qtbot: QtBot, window: MainWindow, tmp_path: Path
 ) -> None:
-    window.new_notebook()
-    assert window.cards == [] and window.path is None
+    window.files.new_study()
+    assert window.cards == [] and window.study.path is None
     note = window.add_note()
     assert isinstance(note.body, NoteView) and note.body.editing
-    note.body.title_edit.setText("Why this notebook")
+    note.body.title_edit.setText("Why this study")
     note.body.text_edit.setPlainText("Watch **pass-through**.\n\n- one\n- two")
     note.body.finish_editing()
-    window.add_preset(preset("outliers-meet-batch-size"), "run")
-    window.add_preset(preset("batch-size-coupling"), "sweep")
-    run = window.run_views[0]
-    window._commit_scenario(run.model, run.model.scenario.with_overrides({"train.lr": 0.07}))
-    assert [c.kind for c in window.cards] == ["note", "run", "sweep"]
-    assert window.is_modified() and window.windowTitle().endswith("*")
+    window.add_preset(preset("outliers-meet-batch-size"), "fan")
+    window.add_preset(preset("batch-size-coupling"), "map")
+    fan = window.fan_views[0]
+    window.commit_scenario(fan.model, fan.model.scenario.with_overrides({"train.lr": 0.07}))
+    assert [c.kind for c in window.cards] == ["note", "fan", "map"]
+    assert window.study.modified and window.windowTitle().endswith("*")
 
-    path = tmp_path / "sub" / "built.notebook.toml"
-    assert window.save_to(path)
-    assert not window.is_modified()
-    reopened = load_notebook(path)
-    assert reopened.entries == window.current_notebook().entries
+    path = tmp_path / "sub" / "built.study.toml"
+    assert window.files.save_to(path)
+    assert not window.study.modified and not window.windowTitle().endswith("*")
+    reopened = load_study(path)
+    assert reopened.entries == window.study.to_file().entries
     assert reopened.entries[0].text == "Watch **pass-through**.\n\n- one\n- two"
     assert reopened.entries[1].scenario is not None
     assert reopened.entries[1].scenario.train.lr == 0.07  # the edit, written inline
-    # The unedited sweep keeps its preset reference, relative to the new folder.
+    # The unedited map keeps its preset reference, relative to the new folder.
     assert reopened.entries[2].preset is not None
     assert (path.parent / str(reopened.entries[2].preset)).resolve() == (
         shipped_dir() / "batch-size-coupling.toml"
     ).resolve()
 
-    other = MainWindow(reopened)
+    other = MainWindow(Study.from_file(reopened))
     qtbot.addWidget(other)
-    assert other.current_notebook().entries == window.current_notebook().entries
+    assert other.study.to_file().entries == window.study.to_file().entries
     other.close()
 
 
@@ -71,7 +74,7 @@ def test_move_and_delete_are_undone_and_redone(window: MainWindow) -> None:
     window.move_card(window.cards[0], 1)
     assert titles(window) == ["Quick blobs", "A note"]
     window.delete_card(window.cards[0])
-    assert titles(window) == ["A note"] and window.run_views == []
+    assert titles(window) == ["A note"] and window.fan_views == []
     assert window.outline.count() == 1
     window.undo_stack.undo()
     assert titles(window) == ["Quick blobs", "A note"]
@@ -84,7 +87,7 @@ def test_move_and_delete_are_undone_and_redone(window: MainWindow) -> None:
 
 
 def test_form_edits_notes_and_titles_are_undone(window: MainWindow) -> None:
-    run = window.run_views[0].model
+    run = window.fan_views[0].model
     form = window.inspector.widget(0)
     assert isinstance(form, ScenarioForm)
     form.widgets["train.steps"].setValue(55)  # type: ignore[attr-defined]
@@ -107,62 +110,64 @@ def test_form_edits_notes_and_titles_are_undone(window: MainWindow) -> None:
     from app import commands
 
     window.undo_stack.push(commands.Rename(run, "Renamed"))
-    assert window.outline.item(1).text() == "run: Renamed"  # type: ignore[union-attr]
+    assert window.outline.item(1).text() == "fan: Renamed"  # type: ignore[union-attr]
     assert window.cards[1].title_label.text() == "Renamed"
     window.undo_stack.undo()
-    assert window.outline.item(1).text() == "run: Quick blobs"  # type: ignore[union-attr]
+    assert window.outline.item(1).text() == "fan: Quick blobs"  # type: ignore[union-attr]
 
 
-def test_a_changed_scenario_shows_stale_and_never_the_old_plots(
+def test_an_edit_keeps_the_earlier_curves_faded_and_never_as_current(
     qtbot: QtBot, window: MainWindow
 ) -> None:
     view = trained(qtbot, window)
 
-    def drawn() -> int:
-        xs = (c.getOriginalDataset()[0] for c in view.curves.values())
+    def drawn(curves: dict) -> int:  # type: ignore[type-arg]
+        xs = (c.getOriginalDataset()[0] for c in curves.values())
         return sum(0 if x is None else len(x) for x in xs)
 
-    assert drawn() > 0
+    assert drawn(view.curves) > 0 and drawn(view.faded) == 0
     model = view.model
-    window._commit_scenario(model, model.scenario.with_overrides({"train.lr": 0.2}))
+    window.commit_scenario(model, model.scenario.with_overrides({"train.lr": 0.2}))
     view.refresh()
-    assert model.stale and "stale" in view.status_label.text()
-    assert drawn() == 0 and "earlier scenario" in view.readout.text()
-    assert not view.hist_clean.isVisible()
+    assert model.edited and view.state_label.text() == "edited since these results"
+    assert drawn(view.curves) == 0  # nothing of the earlier scenario is drawn as current
+    assert drawn(view.faded) > 0 and "before the edit" in view.readout.text()
     window.undo_stack.undo()  # back to the scenario the results belong to
     view.refresh()
-    assert not model.stale and drawn() > 0
+    assert not model.edited and drawn(view.curves) > 0 and drawn(view.faded) == 0
 
 
-def test_results_are_cached_beside_the_notebook_by_scenario_hash(
+def test_results_are_cached_beside_the_study_by_scenario_hash(
     qtbot: QtBot, window: MainWindow
 ) -> None:
     view = trained(qtbot, window)
-    assert window.path is not None
-    folder = cache.cache_dir(window.path)
-    assert cache.run_path(folder, view.model.scenario).is_file()
+    path = window.study.path
+    assert path is not None
+    folder = cache.cache_dir(path)
+    assert cache.path_for(folder, view.model).is_file()
 
-    again = MainWindow(load_notebook(window.path))
+    again = MainWindow(Study.open(path))
+    again.auto_train = False
     qtbot.addWidget(again)
-    cached = again.run_views[0].model
-    assert cached.status == DONE and not cached.stale  # drawn at once, nothing trained
+    cached = again.fan_views[0].model
+    assert cached.status == TRAINED and not cached.edited  # drawn at once, nothing trained
     assert not again.pool.started
     for batch, stack in view.model.stacks.items():
         np.testing.assert_array_equal(
             cached.stacks[batch].values["val_loss"], stack.values["val_loss"]
         )
-    # A changed scenario finds nothing: it is not run, and shows no results.
-    again._commit_scenario(cached, cached.scenario.with_overrides({"train.lr": 0.3}))
-    assert cached.stale
-    again.run_views[0].refresh()
-    assert "earlier scenario" in again.run_views[0].readout.text()
+    # A changed scenario finds nothing: it is not trained, and shows its results as earlier.
+    again.commit_scenario(cached, cached.scenario.with_overrides({"train.lr": 0.3}))
+    assert cached.edited and not again.pool.started
+    again.fan_views[0].refresh()
+    assert "before the edit" in again.fan_views[0].readout.text()
     again.close()
 
-    text = window.path.read_text().replace("steps = 80", "steps = 70")
-    window.path.write_text(text)
-    changed = MainWindow(load_notebook(window.path))
+    text = path.read_text().replace("steps = 80", "steps = 70")
+    path.write_text(text)
+    changed = MainWindow(Study.open(path))
     qtbot.addWidget(changed)
-    assert changed.run_views[0].model.status == IDLE
+    assert changed.fan_views[0].model.status == NOT_TRAINED
     changed.close()
 
 
@@ -176,15 +181,15 @@ def test_closing_with_unsaved_changes_asks_and_cancel_keeps_the_window(
     window.show()
     window.add_note().body.finish_editing()  # type: ignore[union-attr]
     monkeypatch.setattr(
-        MainWindow, "ask_unsaved", lambda self: QtWidgets.QMessageBox.StandardButton.Cancel
+        StudyFiles, "ask_unsaved", lambda self: QtWidgets.QMessageBox.StandardButton.Cancel
     )
     assert not window.close()
     assert window.isVisible()
     monkeypatch.setattr(
-        MainWindow, "ask_unsaved", lambda self: QtWidgets.QMessageBox.StandardButton.Save
+        StudyFiles, "ask_unsaved", lambda self: QtWidgets.QMessageBox.StandardButton.Save
     )
     assert window.close()
-    assert window.path is not None and len(load_notebook(window.path).entries) == 3
+    assert window.study.path is not None and len(load_study(window.study.path).entries) == 3
 
 
 def test_presets_are_browsed_added_and_saved_as_user_presets(
@@ -197,14 +202,14 @@ def test_presets_are_browsed_added_and_saved_as_user_presets(
     info = browser.current()
     assert info is not None and info.shipped and info.scenario is not None
     assert info.scenario.notes and info.scenario.notes in browser.notes.text()
-    browser._choose("sweep")
-    assert browser.choice == (info, "sweep")
+    browser._choose("map")
+    assert browser.choice == (info, "map")
     window.add_preset(*browser.choice)
-    assert window.cards[-1].kind == "sweep"
+    assert window.cards[-1].kind == "map"
 
     from core.presets import save_user_preset
 
-    scenario = window.run_views[0].model.scenario
+    scenario = window.fan_views[0].model.scenario
     path = save_user_preset(scenario, "My blobs, tuned")
     assert path == user_dir() / "my-blobs-tuned.toml"
     with pytest.raises(FileExistsError):
@@ -214,31 +219,32 @@ def test_presets_are_browsed_added_and_saved_as_user_presets(
     assert not (shipped_dir() / path.name).exists()  # shipped presets are never written
 
 
-def test_recent_notebooks_new_and_collapse(
+def test_recent_studies_new_and_collapse(
     window: MainWindow, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    from core.userdata import recent_notebooks
+    from core.userdata import recent_studies
 
-    assert window.path is not None
-    other = tmp_path / "other.notebook.toml"
-    other.write_text('schema = 1\ntitle = "Other"\n[[entry]]\nkind = "note"\ntitle = "Hi"\n')
+    assert window.study.path is not None
+    other = tmp_path / "other.study.toml"
+    other.write_text('schema = 2\ntitle = "Other"\n[[entry]]\nkind = "note"\ntitle = "Hi"\n')
     assert window.open_path(other)
-    assert window.notebook_title == "Other" and titles(window) == ["Hi"]
-    assert recent_notebooks()[0] == other.resolve()
-    window._fill_recent_menu()
+    assert window.study.title == "Other" and titles(window) == ["Hi"]
+    assert recent_studies()[0] == other.resolve()
+    window.files.fill_recent_menu(window.recent_menu)
     assert window.recent_menu.actions()[0].text() == str(other.resolve())
-    bad = tmp_path / "bad.notebook.toml"
-    bad.write_text("schema = 1\n[[entry]]\nkind = 'chart'\n")
+    bad = tmp_path / "bad.study.toml"
+    bad.write_text("schema = 2\n[[entry]]\nkind = 'chart'\n")
     from PySide6 import QtWidgets
 
     warnings: list[str] = []
     monkeypatch.setattr(QtWidgets.QMessageBox, "warning", lambda *a: warnings.append(a[2]))
     assert not window.open_path(bad)
     assert "entry 1" in warnings[0] and "kind = 'chart'" in warnings[0]
-    assert window.notebook_title == "Other"  # a file that does not load changes nothing
+    assert window.study.title == "Other"  # a file that does not load changes nothing
 
-    window.new_notebook()
-    assert window.cards == [] and window.path is None and "not saved" in window.windowTitle()
+    window.files.new_study()
+    assert window.cards == [] and window.study.path is None
+    assert "not saved" in window.windowTitle()
     card = window.add_note()
     card.body.finish_editing()  # type: ignore[union-attr]
     card.set_collapsed(True)

@@ -1,4 +1,4 @@
-"""`gradfence report`: one self-contained HTML file, checked with an HTML parser."""
+"""`gradfence handout`: one self-contained HTML file, checked with an HTML parser."""
 
 from __future__ import annotations
 
@@ -16,9 +16,9 @@ from PySide6 import QtGui
 
 from app.main_window import MainWindow
 from core import __version__
-from core.notebook import load_notebook
-from core.run_model import DONE
+from core.entry_model import TRAINED
 from core.scenario import parse_scenario
+from core.study_file import load_study
 from tests.conftest import REPO, SCENARIOS
 
 # Tags that load something from elsewhere, and attributes that name what they load.
@@ -74,19 +74,20 @@ def check_self_contained(text: str, images: int) -> Collector:
     return parsed
 
 
-def test_the_guided_notebook_reports_to_one_self_contained_file(tmp_path: Path) -> None:
-    for name in ("batch-size-coupling.notebook.toml", "batch-size-coupling.toml"):
+def test_the_guided_study_becomes_one_self_contained_handout(tmp_path: Path) -> None:
+    for name in ("batch-size-coupling.study.toml", "batch-size-coupling.toml"):
         shutil.copy(SCENARIOS / name, tmp_path / name)
-    notebook = tmp_path / "batch-size-coupling.notebook.toml"
-    out = tmp_path / "report.html"
-    command = [sys.executable, "-m", "app.cli", "report", str(notebook), "--out", str(out)]
+    study = tmp_path / "batch-size-coupling.study.toml"
+    out = tmp_path / "handout.html"
+    command = [sys.executable, "-m", "app.cli", "handout", str(study), "--out", str(out)]
     env = {**os.environ, "QT_QPA_PLATFORM": "offscreen"}
     first = subprocess.run(command, cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
     assert first.returncode == 0, first.stderr
-    assert "3 to run, 0 cached" in first.stderr and "100%" in first.stderr
+    assert "3 to train, 0 cached" in first.stderr and "100%" in first.stderr
+    assert f"wrote {out}" in first.stdout
     text = out.read_text(encoding="utf-8")
-    parsed = check_self_contained(text, images=3)  # two run entries and the sweep
-    entries = load_notebook(notebook).entries
+    parsed = check_self_contained(text, images=3)  # two fans and the map
+    entries = load_study(study).entries
     for entry in entries:
         assert html.escape(entry.title) in text
     assert f"Gradfence {__version__}" in text
@@ -98,25 +99,25 @@ def test_the_guided_notebook_reports_to_one_self_contained_file(tmp_path: Path) 
     out.unlink()
     again = subprocess.run(command, cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
     assert again.returncode == 0, again.stderr
-    assert "0 to run, 3 cached" in again.stderr  # results cached by scenario hash
+    assert "0 to train, 3 cached" in again.stderr  # results cached by scenario hash
     check_self_contained(out.read_text(encoding="utf-8"), images=3)
 
 
-def test_file_export_report_runs_what_is_missing_then_writes(
+def test_file_export_handout_trains_what_is_missing_then_writes(
     window: MainWindow, tmp_path: Path
 ) -> None:
-    assert window.run_views[0].model.status != DONE
+    assert window.fan_views[0].model.status != TRAINED
     out = tmp_path / "exported.html"
-    assert window.export_report(out)  # trains the run entry first, with a progress dialog
-    assert window.run_views[0].model.status == DONE
+    assert window.files.export_handout(out)  # trains the fan first, with a progress dialog
+    assert window.fan_views[0].model.status == TRAINED
     text = out.read_text(encoding="utf-8")
     parsed = check_self_contained(text, images=1)
     assert "Quick blobs" in text and "<em>Markdown</em>" in text
     assert len(parsed.pre) == 1
 
 
-def test_note_markdown_in_a_report_loads_nothing() -> None:
-    from app.report import markdown_html
+def test_note_markdown_in_a_handout_loads_nothing() -> None:
+    from app.handout import markdown_html
 
     text = "*A* <script>x()</script> ![chart](http://host/p.png) [docs](https://host/d)\n\n- **b**"
     fragment = markdown_html(text)

@@ -1,4 +1,4 @@
-"""The story the guided notebook tells, measured on its own entries.
+"""The story the guided study tells, measured on its own entries.
 
 The claim under test is the project's central one (DESIGN.md, section 1) and follows from a
 derived fact in REFERENCES.md ("Batch size, noise and norms"): one outlier of gradient norm R
@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 
 from core.engine import Engine, Member
-from core.notebook import load_notebook
 from core.scenario import Scenario
+from core.study_file import load_study
 from tests.conftest import SCENARIOS
 
-GUIDED = SCENARIOS / "batch-size-coupling.notebook.toml"
+GUIDED = SCENARIOS / "batch-size-coupling.study.toml"
 
 
 def pass_through_on_outlier_steps(scenario: Scenario) -> dict[str, float]:
@@ -34,7 +34,7 @@ def pass_through_on_outlier_steps(scenario: Scenario) -> dict[str, float]:
 
 @pytest.fixture(scope="module")
 def runs() -> dict[int, dict[str, float]]:
-    entries = [e for e in load_notebook(GUIDED).entries if e.kind == "run"]
+    entries = [e for e in load_study(GUIDED).entries if e.kind == "fan"]
     assert len(entries) == 2
     out = {}
     for entry in entries:
@@ -43,11 +43,11 @@ def runs() -> dict[int, dict[str, float]]:
     return out
 
 
-def test_the_guided_notebook_runs_a_small_and_a_large_batch_at_the_same_thresholds() -> None:
-    notebook = load_notebook(GUIDED)
-    kinds = [e.kind for e in notebook.entries]
-    assert kinds.count("run") == 2 and kinds.count("sweep") == 1 and kinds[0] == "note"
-    small, large = (e.scenario for e in notebook.entries if e.kind == "run")
+def test_the_guided_study_trains_a_small_and_a_large_batch_at_the_same_thresholds() -> None:
+    study = load_study(GUIDED)
+    kinds = [e.kind for e in study.entries]
+    assert kinds.count("fan") == 2 and kinds.count("map") == 1 and kinds[0] == "note"
+    small, large = (e.scenario for e in study.entries if e.kind == "fan")
     assert small is not None and large is not None
     assert small.train.batch_size < large.train.batch_size
     assert small.clip == large.clip  # the same methods at the same thresholds

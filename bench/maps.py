@@ -1,7 +1,7 @@
-"""Sweep benchmarks on the shipped coupling preset, baselines measured in the same run.
+"""Map benchmarks on the shipped coupling preset, baselines measured in the same run.
 
-1. run_sweep with 2 worker processes against 1 (the whole sweep, worker start-up included).
-2. run_sweep with 2 processes against a naive baseline that trains each grid point as its own
+1. run_map with 2 worker processes against 1 (the whole map, worker start-up included).
+2. run_map with 2 processes against a naive baseline that trains each grid point as its own
    plain nn.Module run (global-norm with clip_grad_norm_, example-norm with torch.func
    per-example gradients), on one thread. The baseline is timed on an evenly spread subset of
    the grid (seed 0, every third threshold) and scaled by the number of points of each
@@ -23,18 +23,18 @@ import torch
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from core.engine import Engine, Member, _lr_factor
+from core.maps import plan, run_map
 from core.scenario import ClipConfig, Scenario, load_scenario
-from core.sweep import plan, run_sweep
 
 PRESET = Path(__file__).resolve().parent.parent / "scenarios" / "batch-size-coupling.toml"
 ROUNDS = 3
 
 
-def time_sweep(scenario: Scenario, jobs: int) -> float:
+def time_map(scenario: Scenario, jobs: int) -> float:
     out = Path(tempfile.mkdtemp(prefix="gradfence-bench-"))
     try:
         start = time.perf_counter()
-        run_sweep(scenario, out, jobs=jobs)
+        run_map(scenario, out, jobs=jobs)
         return time.perf_counter() - start
     finally:
         shutil.rmtree(out)
@@ -92,7 +92,7 @@ def naive_time(scenario: Scenario) -> tuple[float, int, int]:
             cells[(method, p.batch_size)] += 1
             thresholds = scenario.thresholds_for(scenario.clip[p.clip_index])
             index = thresholds.index(p.threshold) if method != "none" else 0
-            if p.seed == scenario.sweep.seeds[0] and index % 3 == 0:
+            if p.seed == scenario.map.seeds[0] and index % 3 == 0:
                 sample[(method, p.batch_size)].append((p.threshold, p.seed))
     total, measured = 0.0, 0
     for (method, batch), points in sample.items():
@@ -107,20 +107,20 @@ def main() -> None:
     points = sum(len(c.points) for c in plan(scenario))
     one, two, ratios = [], [], []
     for _ in range(ROUNDS):
-        a = time_sweep(scenario, 1)
-        b = time_sweep(scenario, 2)
+        a = time_map(scenario, 1)
+        b = time_map(scenario, 2)
         one.append(a)
         two.append(b)
         ratios.append(a / b)
     naive, measured, grid = naive_time(scenario)
     t1, t2 = statistics.median(one), statistics.median(two)
     print(f"{scenario.name}: {points} grid points, {len(plan(scenario))} stacks")
-    print(f"sweep, 1 process: {t1:.2f} s; 2 processes: {t2:.2f} s (medians of {ROUNDS} rounds)")
+    print(f"map, 1 process: {t1:.2f} s; 2 processes: {t2:.2f} s (medians of {ROUNDS} rounds)")
     print(
         f"naive per-point nn.Module runs: {naive:.1f} s (timed {measured} of {grid} points, scaled)"
     )
-    print(f"sweep_naive_over_jobs2: {naive / t2:.1f} x faster (target >= 10)")
-    print(f"sweep_jobs2_over_jobs1: {statistics.median(ratios):.2f} x faster (target >= 1.6)")
+    print(f"map_naive_over_jobs2: {naive / t2:.1f} x faster (target >= 10)")
+    print(f"map_jobs2_over_jobs1: {statistics.median(ratios):.2f} x faster (target >= 1.6)")
 
 
 if __name__ == "__main__":

@@ -1,8 +1,11 @@
-"""Notebook files (`*.notebook.toml`): a title and ordered entries (notes, runs, sweeps).
+"""Study files (`*.study.toml`): a title and ordered entries (notes, fans and maps).
 
-A run or sweep entry names a preset (relative to the notebook) and/or carries an inline
+A fan or map entry names a preset (relative to the study) and/or carries an inline
 [entry.scenario] table, plus [entry.set] dotted overrides. Entries are validated as strictly as
 presets; an error names the entry by position and title.
+
+Older files still load: a schema-1 `*.notebook.toml` called fans "run" and maps "sweep", and its
+scenarios had a [sweep] table; each is read as today's form, with one notice per file.
 
 Saving writes an unedited entry back as it was written (its preset reference, inline table and
 overrides, the preset path made relative to the new folder); an entry whose scenario was edited is
@@ -21,26 +24,38 @@ from typing import Any
 from core.errors import GradfenceInputError
 from core.fields import describe
 from core.fileio import write_text_atomic
-from core.scenario import SCHEMA, Scenario, parse_scenario, parse_toml, read_text
+from core.scenario import (
+    OLD_SCHEMAS,
+    SCHEMA,
+    Scenario,
+    parse_scenario,
+    parse_toml,
+    read_text,
+    upgrade_schema,
+)
 
-NOTEBOOK_SUFFIX = ".notebook.toml"
-ENTRY_KINDS = ("note", "run", "sweep")
+STUDY_SUFFIX = ".study.toml"
+OLD_SUFFIX = ".notebook.toml"  # schema 1
+ENTRY_KINDS = ("note", "fan", "map")
+SCENARIO_KINDS = ("fan", "map")
+OLD_KINDS = {"run": "fan", "sweep": "map"}  # schema 1
 ENTRY_KEYS = {
     "note": ("kind", "title", "text"),
-    "run": ("kind", "title", "preset", "scenario", "set"),
-    "sweep": ("kind", "title", "preset", "scenario", "set"),
+    "fan": ("kind", "title", "preset", "scenario", "set"),
+    "map": ("kind", "title", "preset", "scenario", "set"),
 }
 
 
 @dataclass(frozen=True)
-class Entry:
-    """One entry. Equality is what a reader sees: kind, title, note text and scenario."""
+class EntryRecord:
+    """One entry as a file holds it. Equality is what a reader sees: kind, title, note text
+    and scenario."""
 
     kind: str
     title: str
     text: str = ""  # notes: Markdown
-    scenario: Scenario | None = None  # runs and sweeps: resolved
-    preset: str | None = field(default=None, compare=False)  # as written in the notebook
+    scenario: Scenario | None = None  # fans and maps: resolved
+    preset: str | None = field(default=None, compare=False)  # as written in the file
     # How the entry was written, to write it back the same way while its scenario is unedited:
     raw: Mapping[str, Any] | None = field(default=None, compare=False, repr=False)
     origin: Scenario | None = field(default=None, compare=False, repr=False)
@@ -48,46 +63,107 @@ class Entry:
 
 
 @dataclass(frozen=True)
-class Notebook:
+class StudyFile:
     title: str
-    entries: tuple[Entry, ...]
+    entries: tuple[EntryRecord, ...]
     path: Path | None = None
+    notices: tuple[str, ...] = ()  # e.g. "schema 1, read as schema 2"
 
 
-def load_notebook(path: str | Path) -> Notebook:
+def is_study(path: Path) -> bool:
+    return path.name.endswith((STUDY_SUFFIX, OLD_SUFFIX))
+
+
+def study_stem(path: Path) -> str:
+    """`demo` for demo.study.toml (and for an older demo.notebook.toml)."""
+    for suffix in (STUDY_SUFFIX, OLD_SUFFIX):
+        if path.name.endswith(suffix):
+            return path.name[: -len(suffix)]
+    return path.stem
+
+
+def load_study(path: str | Path) -> StudyFile:
     path = Path(path)
-    return parse_notebook(parse_toml(read_text(path), str(path)), path)
+    return loads_study(read_text(path), path)
 
 
-def loads_notebook(text: str, path: Path, source: str | None = None) -> Notebook:
-    """Notebook text that belongs at `path` (presets resolve beside it), e.g. a recovery copy."""
-    return parse_notebook(parse_toml(text, source or str(path)), path, source)
+def loads_study(text: str, path: Path, source: str | None = None) -> StudyFile:
+    """Study text that belongs at `path` (presets resolve beside it), e.g. a recovery copy."""
+    source = source or str(path)
+    if not text.strip():
+        raise GradfenceInputError(
+            f"{source}: is empty; a study has a title and [[entry]] tables (File > New study "
+            "in the app makes one)."
+        )
+    return parse_study(parse_toml(text, source), path, source)
 
 
-def parse_notebook(raw: Mapping[str, Any], path: Path, source: str | None = None) -> Notebook:
+def parse_study(raw: Mapping[str, Any], path: Path, source: str | None = None) -> StudyFile:
     source = source or str(path)
     allowed = ("schema", "title", "entry")
     for key in raw:
         if key not in allowed:
             raise GradfenceInputError(
-                f'{source}: unknown key "{key}"; a notebook has {", ".join(allowed)}.'
+                f'{source}: unknown key "{key}"; a study has {", ".join(allowed)}.'
             )
-    if raw.get("schema", SCHEMA) != SCHEMA:
+    schema = raw.get("schema", SCHEMA)
+    if isinstance(schema, bool) or (schema != SCHEMA and schema not in OLD_SCHEMAS):
         raise GradfenceInputError(
-            f"{source}: schema = {raw.get('schema')!r} is not supported; "
-            f"this version reads schema = {SCHEMA}."
+            f"{source}: schema = {schema!r} is not supported; this version reads schema = "
+            f"{SCHEMA} (and the older {', '.join(map(str, OLD_SCHEMAS))})."
         )
-    title = raw.get("title", path.stem)
+    title = raw.get("title", study_stem(path))
     if not isinstance(title, str):
         raise GradfenceInputError(f"{source}: title must be a string, not {describe(title)}.")
     items = raw.get("entry", [])
     if not isinstance(items, list):
         raise GradfenceInputError(f"{source}: entry must be [[entry]] tables.")
-    entries = tuple(_parse_entry(item, i, path, source) for i, item in enumerate(items))
-    return Notebook(title, entries, path)
+    notices: list[str] = []
+    old = schema in OLD_SCHEMAS
+    if old:
+        where = " to a .study.toml file" if path.name.endswith(OLD_SUFFIX) else ""
+        notices.append(
+            f'{source}: schema 1, read as schema 2 (entries "run" are fans, "sweep" are maps); '
+            f"saving writes schema 2{where}."
+        )
+    entries = tuple(
+        _parse_entry(_upgrade_entry(item) if old else item, i, path, source, notices)
+        for i, item in enumerate(items)
+    )
+    return StudyFile(title, entries, path, tuple(dict.fromkeys(notices)))
 
 
-def _parse_entry(item: Any, index: int, path: Path, source: str) -> Entry:
+def _upgrade_entry(item: Any) -> Any:
+    """A schema-1 [[entry]] table in today's words."""
+    if not isinstance(item, Mapping):
+        return item
+    out = dict(item)
+    kind = out.get("kind")
+    if isinstance(kind, str) and kind in OLD_KINDS:
+        out["kind"] = OLD_KINDS[kind]
+    inline = out.get("scenario")
+    if isinstance(inline, Mapping):
+        upgraded = upgrade_schema({**inline, "schema": 1})
+        upgraded.pop("schema")
+        if "schema" in inline:
+            upgraded["schema"] = SCHEMA
+        out["scenario"] = upgraded
+    overrides = out.get("set")
+    if isinstance(overrides, Mapping):
+        out["set"] = {_upgrade_key(str(k)): v for k, v in overrides.items()}
+    return out
+
+
+def _upgrade_key(key: str) -> str:
+    parts = key.split(".")
+    if parts[0] == "sweep":
+        parts[0] = "map"
+    if len(parts) == 3 and parts[0] == "clip" and parts[2] == "sweep":
+        parts[2] = "map_thresholds"
+    return ".".join(parts)
+
+
+def _parse_entry(item: Any, index: int, path: Path, source: str, notices: list[str]) -> EntryRecord:
     where = f"{source}: entry {index + 1}"
     if not isinstance(item, Mapping):
         raise GradfenceInputError(f"{where} must be a table, not {describe(item)}.")
@@ -110,7 +186,7 @@ def _parse_entry(item: Any, index: int, path: Path, source: str) -> Entry:
         text = item.get("text", "")
         if not isinstance(text, str):
             raise GradfenceInputError(f"{where}: text must be a string, not {describe(text)}.")
-        return Entry(kind, title, text=text)
+        return EntryRecord(kind, title, text=text)
     raw: dict[str, Any] = {}
     preset = item.get("preset")
     preset_path = None
@@ -124,19 +200,26 @@ def _parse_entry(item: Any, index: int, path: Path, source: str) -> Entry:
             raw = parse_toml(read_text(preset_path), str(preset_path))
         except GradfenceInputError as exc:
             raise GradfenceInputError(f"{where}: preset {preset}: {exc}") from None
+        if raw.get("schema", SCHEMA) in OLD_SCHEMAS:
+            raw = upgrade_schema(raw)
+            notices.append(
+                f"{preset_path}: schema 1, read as schema 2 ([sweep] is now [map]); the file "
+                "itself is left as it is."
+            )
     inline = item.get("scenario", {})
     if not isinstance(inline, Mapping):
         raise GradfenceInputError(f"{where}: scenario must be a table, not {describe(inline)}.")
     raw = _merge(raw, inline)
     if preset is None and not inline:
         raise GradfenceInputError(f"{where} needs a preset or a [entry.scenario] table.")
+    raw["schema"] = SCHEMA
     scenario = parse_scenario(raw, where)
     overrides = item.get("set", {})
     if not isinstance(overrides, Mapping):
         raise GradfenceInputError(f"{where}: set must be a table of dotted keys.")
     if overrides:
         scenario = scenario.with_overrides(overrides, f"{where} [entry.set]")
-    return Entry(
+    return EntryRecord(
         kind,
         title,
         scenario=scenario,
@@ -158,12 +241,8 @@ def _merge(base: Mapping[str, Any], top: Mapping[str, Any]) -> dict[str, Any]:
     return out
 
 
-def is_notebook(path: Path) -> bool:
-    return path.name.endswith(NOTEBOOK_SUFFIX)
-
-
-def entry_table(entry: Entry, folder: Path) -> dict[str, Any]:
-    """The [[entry]] table of `entry` in a notebook saved in `folder`."""
+def entry_table(entry: EntryRecord, folder: Path) -> dict[str, Any]:
+    """The [[entry]] table of `entry` in a study saved in `folder`."""
     if entry.kind == "note":
         return {"kind": "note", "title": entry.title, "text": entry.text}
     if entry.scenario is None:
@@ -177,14 +256,14 @@ def entry_table(entry: Entry, folder: Path) -> dict[str, Any]:
     return {"kind": entry.kind, "title": entry.title, "scenario": entry.scenario.to_dict()}
 
 
-def dumps_notebook(notebook: Notebook, folder: Path) -> str:
+def dumps_study(study: StudyFile, folder: Path) -> str:
     import tomli_w
 
-    tables = [entry_table(e, folder) for e in notebook.entries]
-    document = {"schema": SCHEMA, "title": notebook.title, "entry": tables}
+    tables = [entry_table(e, folder) for e in study.entries]
+    document = {"schema": SCHEMA, "title": study.title, "entry": tables}
     return tomli_w.dumps(document, multiline_strings=True)
 
 
-def save_notebook(notebook: Notebook, path: Path) -> None:
+def save_study(study: StudyFile, path: Path) -> None:
     """Write atomically: the previous file stays whole until the new one is complete."""
-    write_text_atomic(path, dumps_notebook(notebook, path.resolve().parent))
+    write_text_atomic(path, dumps_study(study, path.resolve().parent))

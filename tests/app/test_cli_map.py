@@ -1,4 +1,4 @@
-"""`gradfence sweep`: the files of DESIGN section 7 and sentences a person can paste."""
+"""`gradfence map`: the files of DESIGN section 7 and sentences a person can paste."""
 
 from __future__ import annotations
 
@@ -9,19 +9,19 @@ from pathlib import Path
 import pytest
 
 from app.cli import main
-from tests.core.test_sweep import SMALL
+from tests.core.test_maps import SMALL
 
 
-def test_sweep_writes_its_files_and_says_what_it_found(
+def test_map_writes_its_files_and_says_what_it_found(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     preset = tmp_path / "small.toml"
     preset.write_text(SMALL)
     out = tmp_path / "out"
-    assert main(["sweep", str(preset), "--out", str(out), "--jobs", "1"]) == 0
+    assert main(["map", str(preset), "--out", str(out), "--jobs", "1"]) == 0
     printed = capsys.readouterr().out
     assert "global-norm:" in printed and "example-norm:" in printed and "norm profile:" in printed
-    with (out / "sweep.csv").open() as f:
+    with (out / "map.csv").open() as f:
         rows = list(csv.DictReader(f))
     assert len(rows) == 54 and {
         "final_val_loss",
@@ -37,15 +37,15 @@ def test_sweep_writes_its_files_and_says_what_it_found(
             entry
         )
         assert [w["batch_size"] for w in entry["windows"]] == [8, 16, 32]
-        assert set(entry["windows"][0]) == {"batch_size", "lower", "upper"}
+        assert {"batch_size", "lower", "upper", "inside"} <= set(entry["windows"][0])
     profile = json.loads((out / "profile.json").read_text())
     assert profile["trace"] > 0 and len(profile["predicted_norm"]) == len(profile["batch_sizes"])
     assert {s["method"] for s in profile["suggestions"]} == {"global-norm", "example-norm"}
 
 
-def test_sweep_rejects_a_bad_job_count(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_map_rejects_a_bad_job_count(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     preset = tmp_path / "small.toml"
     preset.write_text(SMALL)
-    assert main(["sweep", str(preset), "--jobs", "0", "--out", str(tmp_path / "o")]) == 2
+    assert main(["map", str(preset), "--jobs", "0", "--out", str(tmp_path / "o")]) == 2
     err = capsys.readouterr().err
     assert "--jobs = 0 must be at least 1." in err and "Traceback" not in err

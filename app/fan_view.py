@@ -1,0 +1,511 @@
+"""FanView: a fan entry's fence, its live plots and a readout, with threshold and batch-size
+scrubbing. Keeps no copy of the model, only which member is on display."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtWidgets
+
+from app.axes import LogAxis, PlainAxis, tick_text
+from app.colors import CLEAN_COLOR, FADED_ALPHA, LINE_STYLES, OUTLIER_COLOR, method_color
+from app.export import export_menu
+from app.fence import FenceView
+from core.fan import FAN_SIZE, fan_factors, member_for
+from core.fan_model import FanModel, StackData, clip_regime
+from core.methods import BATCH_NORM, EXAMPLE_NORM
+from core.scenario import ClipConfig
+
+pg.setConfigOptions(background="w", foreground="k", antialias=False)
+
+# key, title, left axis label, log axis
+PLOTS = (
+    ("loss", "clean validation loss", "loss", True),
+    ("norms", "batch-mean gradient norm", "L2 norm", True),
+    ("clipped", "clipped share", "share of what each method clips", False),
+    ("share", "outliers' share of the update", "share (0 to 1)", False),
+    ("pass", "outlier pass-through", "per step with outliers (0 to 1)", False),
+)
+MARKERS = ("o", "t", "s", "d", "+", "x")
+
+
+def _pen(color: str, style: QtCore.Qt.PenStyle, faded: bool = False, width: float = 2) -> object:
+    qcolor = pg.mkColor(color)
+    if faded:
+        qcolor.setAlpha(FADED_ALPHA)
+    return pg.mkPen(qcolor, width=width, style=style)
+
+
+class FanView(QtWidgets.QFrame):
+    """Shows one FanModel."""
+
+    train_requested = QtCore.Signal(object, float)  # the view, the slider's factor
+    stop_requested = QtCore.Signal(object)
+    selected = QtCore.Signal(object)
+
+    def __init__(self, model: FanModel, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.model = model
+        self.redraws = 0  # plot refreshes, for the UI benchmark
+        self._dirty = False
+        self.setMinimumHeight(1000)
+        self.setSizePolicy(
+            QtWidgets.QSizePolicy.Policy.Ignored, QtWidgets.QSizePolicy.Policy.Preferred
+        )
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(6, 2, 6, 6)
+
+        header = QtWidgets.QHBoxLayout()
+        self.state_label = QtWidgets.QLabel()
+        header.addWidget(self.state_label, 1)
+        self.train_button = QtWidgets.QPushButton("Train")
+        self.train_button.setToolTip("Train this fan: every method at 17 thresholds, 4 batch sizes")
+        self.stop_button = QtWidgets.QPushButton("Stop")
+        self.export_button = QtWidgets.QToolButton()
+        self.export_button.setText("Export")
+        self.export_button.setPopupMode(QtWidgets.QToolButton.ToolButtonPopupMode.InstantPopup)
+        for button in (self.train_button, self.stop_button, self.export_button):
+            header.addWidget(button)
+        layout.addLayout(header)
+
+        self.fence = FenceView(model)
+        layout.addWidget(self.fence)
+
+        controls = QtWidgets.QHBoxLayout()
+        controls.addWidget(QtWidgets.QLabel("Batch size"))
+        self.batch_box = QtWidgets.QComboBox()
+        controls.addWidget(self.batch_box)
+        controls.addSpacing(12)
+        controls.addWidget(QtWidgets.QLabel("Thresholds"))
+        self.slider = QtWidgets.QSlider(QtCore.Qt.Orientation.Horizontal)
+        self.slider.setRange(0, FAN_SIZE - 1)
+        self.slider.setValue(FAN_SIZE // 2)
+        self.slider.setToolTip(
+            "Every method's threshold, scaled alike on a log scale: 1/30 to 30 times the "
+            "threshold its [[clip]] table gives."
+        )
+        controls.addWidget(self.slider, 1)
+        self.factor_box = QtWidgets.QDoubleSpinBox()
+        self.factor_box.setDecimals(3)
+        self.factor_box.setRange(float(fan_factors()[0]), float(fan_factors()[-1]))
+        self.factor_box.setValue(1.0)
+        self.factor_box.setPrefix("× ")
+        self.factor_box.setToolTip("The scale of every threshold: 1 is the entry's own")
+        controls.addWidget(self.factor_box)
+        layout.addLayout(controls)
+        self.method_checks: dict[str, QtWidgets.QCheckBox] = {}
+        self.methods_row = QtWidgets.QHBoxLayout()
+        self.methods_row.addWidget(QtWidgets.QLabel("Show"))
+        self.methods_row.addStretch(1)
+        layout.addLayout(self.methods_row)
+
+        self.readout = QtWidgets.QLabel()
+        self.readout.setWordWrap(True)
+        self.readout.setTextFormat(QtCore.Qt.TextFormat.RichText)
+        layout.addWidget(self.readout)
+        self.hover_label = QtWidgets.QLabel(" ")
+        self.hover_label.setStyleSheet("color: #5C5C5C")
+        layout.addWidget(self.hover_label)
+
+        self.canvas = pg.GraphicsLayoutWidget()
+        self.canvas.setMinimumHeight(760)
+        layout.addWidget(self.canvas, 1)
+        self.legend = pg.LegendItem(colCount=3, labelTextSize="8pt", verSpacing=-6)
+        self.plots: dict[str, pg.PlotItem] = {}
+        for key, title, unit, log in PLOTS:
+            axes = {"left": LogAxis("left") if log else PlainAxis("left")}
+            axes["bottom"] = PlainAxis("bottom")
+            plot = pg.PlotItem(title=title, axisItems=axes)
+            plot.setLabel("bottom", "step")
+            plot.setLabel("left", unit)
+            plot.setClipToView(True)
+            plot.setDownsampling(mode="peak", auto=True)
+            if log:
+                plot.setLogMode(y=True)
+            else:
+                plot.setYRange(0.0, 1.0, padding=0.04)
+                plot.getAxis("left").setTickSpacing(0.25, 0.25)
+            self.plots[key] = plot
+        hist = pg.PlotItem(
+            title="per-example gradient norms",
+            axisItems={"bottom": PlainAxis("bottom"), "left": PlainAxis("left")},
+        )
+        hist.setLabel("bottom", "log10 of the norm, latest step")
+        hist.setLabel("left", "examples")
+        self.plots["hist"] = hist
+        self.columns = 0
+        self.use_columns(2)
+        self.hist_clean, self.hist_outlier = (
+            hist.plot([0, 1], [0], stepMode="center", fillLevel=0, brush=c + "99", pen=c)
+            for c in (CLEAN_COLOR, OUTLIER_COLOR)
+        )
+        self.hist_lines: dict[str, pg.InfiniteLine] = {}
+
+        self.export_button.setMenu(export_menu(self, self.canvas, self.model))
+        self.curves: dict[tuple[str, str], pg.PlotDataItem] = {}
+        self.faded: dict[tuple[str, str], pg.PlotDataItem] = {}
+        self._build_curves()
+
+        self.train_button.clicked.connect(lambda: self.train_requested.emit(self, self.factor))
+        self.stop_button.clicked.connect(lambda: self.stop_requested.emit(self))
+        self.slider.valueChanged.connect(self._on_slider_changed)
+        self.factor_box.editingFinished.connect(self._on_factor_changed)
+        self.batch_box.currentIndexChanged.connect(lambda _: self._on_selection_changed())
+        self.fence.chosen.connect(self._on_fence_chosen)
+        self._hover = pg.SignalProxy(
+            self.plots["loss"].scene().sigMouseMoved, rateLimit=30, slot=self._on_mouse_moved
+        )
+        model.subscribe(self._on_model_changed)
+        self._fill_batches()
+        self._update_state()
+        self.refresh()
+
+    def use_columns(self, columns: int) -> None:
+        """Lay the plots out in `columns` columns (2 in a study, 3 on a wide slide)."""
+        if columns == self.columns:
+            return
+        ci = self.canvas.ci
+        items = [self.plots[key] for key, *_ in PLOTS] + [self.plots["hist"]]
+        if self.columns:
+            for item in [self.legend, *items]:
+                ci.removeItem(item)
+        ci.addItem(self.legend, row=0, col=0, colspan=columns)
+        ci.layout.setRowMaximumHeight(0, 70)
+        for i, item in enumerate(items):
+            ci.addItem(item, row=1 + i // columns, col=i % columns)
+        for col in range(columns):
+            ci.layout.setColumnStretchFactor(col, 1)
+        self.columns = columns
+
+    # -- model -> view -----------------------------------------------------------------------
+
+    def _on_model_changed(self, what: str) -> None:
+        if what == "scenario":
+            self._build_curves()
+            self._fill_batches()
+            self.fence.refresh()
+        if what in ("scenario", "status"):
+            self._update_state()
+        self._dirty = True  # the window's redraw timer calls refresh, never each record
+        if what != "data":
+            self.refresh()
+
+    def detach(self) -> None:
+        """Stop listening to the model (before the view is dropped)."""
+        self.model.unsubscribe(self._on_model_changed)
+
+    def refresh_if_dirty(self) -> None:
+        if self._dirty:
+            self.refresh()
+
+    def headline(self) -> str:
+        """The entry's headline figure: the best member at the entry's own batch size."""
+        batch = self.model.scenario.train.batch_size
+        stack = self.model.shown_stack(batch) or self.model.shown_stack(self.batch_size)
+        if stack is None:
+            return self.model.state_text()
+        last = stack.values["val_loss"][-1] if stack.done else None
+        if last is None or not np.isfinite(last).any():
+            return self.model.state_text()
+        best = int(np.nanargmin(np.where(np.isfinite(last), last, np.nan)))
+        member = stack.members[best]
+        at = "" if math.isnan(member.threshold) else f" at {tick_text(member.threshold)}"
+        return f"best at B={stack.batch_size}: {member.name}{at}, loss {last[best]:.3g}"
+
+    def _labels(self) -> list[tuple[ClipConfig, int]]:
+        """Each [[clip]] table with the occurrence of its method (for the line style)."""
+        seen: dict[str, int] = {}
+        out = []
+        for clip in self.model.scenario.clip:
+            seen[clip.method] = seen.get(clip.method, -1) + 1
+            out.append((clip, seen[clip.method]))
+        return out
+
+    def _build_curves(self) -> None:
+        for key, *_ in PLOTS:
+            self.plots[key].clear()
+        for line in self.hist_lines.values():
+            self.plots["hist"].removeItem(line)
+        self.legend.clear()
+        self.curves, self.faded, self.hist_lines = {}, {}, {}
+        for check in self.method_checks.values():
+            self.methods_row.removeWidget(check)
+            check.deleteLater()
+        self.method_checks = {}
+        solid, dash = QtCore.Qt.PenStyle.SolidLine, QtCore.Qt.PenStyle.DashLine
+        for index, (clip, occurrence) in enumerate(self._labels()):
+            label, color = clip.display_name, method_color(clip.method)
+            style = LINE_STYLES[occurrence % len(LINE_STYLES)]
+            counts = clip.spec.counts if clip.method != "none" else ""
+            for faded, target in ((True, self.faded), (False, self.curves)):
+                target[(label, "loss")] = self.plots["loss"].plot(pen=_pen(color, style, faded))
+                target[(label, "pre")] = self.plots["norms"].plot(pen=_pen(color, style, faded))
+                target[(label, "post")] = self.plots["norms"].plot(pen=_pen(color, dash, faded))
+                target[(label, "clipped")] = self.plots["clipped"].plot(
+                    pen=_pen(color, style, faded)
+                )
+                target[(label, "share")] = self.plots["share"].plot(
+                    pen=_pen(color, style, faded), connect="finite"
+                )
+                brush = pg.mkBrush(color + ("46" if faded else "C8"))
+                target[(label, "pass")] = self.plots["pass"].plot(
+                    pen=None,
+                    symbol=MARKERS[index % len(MARKERS)],
+                    symbolSize=6,
+                    symbolBrush=brush,
+                    symbolPen=None,
+                )
+            if clip.spec.compares == BATCH_NORM:
+                dotted = QtCore.Qt.PenStyle.DotLine
+                self.curves[(label, "level")] = self.plots["norms"].plot(
+                    pen=_pen(color, dotted, width=1.5)
+                )
+            if clip.spec.compares == EXAMPLE_NORM:
+                line = pg.InfiniteLine(angle=90, pen=_pen(color, QtCore.Qt.PenStyle.DotLine))
+                self.plots["hist"].addItem(line)
+                self.hist_lines[label] = line
+            sample = pg.PlotDataItem(pen=_pen(color, style))
+            self.legend.addItem(sample, f"{label} ({counts})" if counts else label)
+            check = QtWidgets.QCheckBox(label)
+            check.setChecked(True)
+            check.setStyleSheet(f"color: {color}")
+            check.toggled.connect(lambda on, name=label: self._on_method_toggled(name, on))
+            self.methods_row.insertWidget(self.methods_row.count() - 1, check)
+            self.method_checks[label] = check
+        black = "#000000"
+        for text, style in (
+            ("norm before clipping", solid),
+            ("after clipping", dash),
+            ("threshold", QtCore.Qt.PenStyle.DotLine),
+        ):
+            self.legend.addItem(pg.PlotDataItem(pen=_pen(black, style)), text)
+        self.legend.addItem(pg.PlotDataItem(pen=_pen(black, solid, faded=True)), "before the edit")
+        self.legend.addItem(self.hist_clean, "clean examples")
+        self.legend.addItem(self.hist_outlier, "outliers")
+
+    def _fill_batches(self) -> None:
+        current = self.batch_box.currentText()
+        self.batch_box.blockSignals(True)
+        self.batch_box.clear()
+        sizes = [str(b) for b in self.model.batch_sizes]
+        self.batch_box.addItems(sizes)
+        preset = str(self.model.scenario.train.batch_size)
+        self.batch_box.setCurrentText(current if current in sizes else preset)
+        self.batch_box.blockSignals(False)
+        self.fence.set_selection(self.batch_size, self.slider.value())
+
+    def _update_state(self) -> None:
+        m = self.model
+        text = m.state_text()
+        if m.status == "training":
+            text += f": {m.progress_text()}"
+        self.state_label.setText(text)
+        bad = m.edited or m.status == "failed"
+        self.state_label.setStyleSheet(f"color: {'#A33A1E' if bad else '#333333'}")
+        self.train_button.setEnabled(m.status != "training")
+        self.stop_button.setEnabled(m.status == "training")
+
+    # -- selection ---------------------------------------------------------------------------
+
+    @property
+    def batch_size(self) -> int:
+        text = self.batch_box.currentText()
+        return int(text) if text else self.model.scenario.train.batch_size
+
+    @property
+    def factor(self) -> float:
+        return float(fan_factors()[self.slider.value()])
+
+    def set_factor(self, factor: float) -> None:
+        """Move the threshold selection to the fan member nearest `factor` x the entry's."""
+        position = int(np.argmin(np.abs(np.log(fan_factors()) - math.log(max(factor, 1e-12)))))
+        self.slider.setValue(position)
+
+    def set_batch_size(self, batch: int) -> None:
+        self.batch_box.setCurrentText(str(batch))
+
+    def member_index(self, label: str) -> int | None:
+        stack = self.model.stacks.get(self.batch_size)
+        if stack is None:
+            return None
+        return member_for(stack.members, label, self.factor)
+
+    def _on_slider_changed(self, _: int) -> None:
+        self.factor_box.blockSignals(True)
+        self.factor_box.setValue(self.factor)
+        self.factor_box.blockSignals(False)
+        self._on_selection_changed()
+
+    def _on_factor_changed(self) -> None:
+        self.set_factor(self.factor_box.value())
+
+    def _on_selection_changed(self) -> None:
+        self.fence.set_selection(self.batch_size, self.slider.value())
+        self.refresh()
+
+    def _on_fence_chosen(self, batch: int, position: int) -> None:
+        self.batch_box.blockSignals(True)
+        self.set_batch_size(batch)
+        self.batch_box.blockSignals(False)
+        if position != self.slider.value():
+            self.slider.setValue(position)  # refreshes
+        else:
+            self._on_selection_changed()
+
+    def _on_method_toggled(self, label: str, visible: bool) -> None:
+        for curves in (self.curves, self.faded):
+            for (name, _), curve in curves.items():
+                if name == label:
+                    curve.setVisible(visible)
+        if label in self.hist_lines:
+            self.hist_lines[label].setVisible(visible)
+
+    def mousePressEvent(self, event: object) -> None:
+        self.selected.emit(self)
+
+    # -- drawing -----------------------------------------------------------------------------
+
+    def refresh(self) -> None:
+        """Point every curve at the selected members; one setData per curve."""
+        self._dirty = False
+        self.redraws += 1
+        current = self.model.current_stack(self.batch_size)
+        earlier = self.model.earlier_stack(self.batch_size)
+        lines = []
+        for clip, _ in self._labels():
+            label = clip.display_name
+            self._draw_member(self.curves, current, label)
+            self._draw_member(self.faded, earlier, label)
+            if current is not None:
+                lines.append(self._readout_line(current, clip))
+        self._draw_histogram(current or earlier)
+        self.fence.update()
+        head = f"Batch size {self.batch_size}, thresholds × {self.factor:.3g}"
+        if current is None and earlier is not None:
+            head += " (faded: before the edit; train to see the edited scenario)"
+        elif current is None:
+            head += ": not trained yet"
+        self.readout.setText(head + ("<br>" + "<br>".join(lines) if lines else ""))
+
+    def _draw_member(
+        self, curves: dict[tuple[str, str], pg.PlotDataItem], stack: StackData | None, label: str
+    ) -> None:
+        keys = ("loss", "pre", "post", "clipped", "share", "pass", "level")
+        if stack is None or not any(m.name == label for m in stack.members):
+            for key in keys:
+                if (label, key) in curves:
+                    curves[(label, key)].setData([], [])
+            return
+        i = member_for(stack.members, label, self.factor)
+        rows = slice(0, stack.rows(i))
+        x, v = stack.steps[rows], stack.values
+        series = {
+            "loss": v["val_loss"],
+            "pre": v["grad_norm_pre"],
+            "post": v["grad_norm_post"],
+            "clipped": v["clipped_share"],
+            "share": v["outlier_share"],
+            "level": v["clip_level"],
+        }
+        for key, values in series.items():
+            if (label, key) in curves:
+                y = values[rows, i]
+                if key == "level":
+                    y = np.where(np.isfinite(y), y, np.nan)
+                curves[(label, key)].setData(x, y, connect="finite")
+        passed = v["outlier_pass"][rows, i]
+        held = np.isfinite(passed)
+        curves[(label, "pass")].setData(x[held], passed[held])
+
+    def _readout_line(self, stack: StackData, clip: ClipConfig) -> str:
+        label = clip.display_name
+        i = member_for(stack.members, label, self.factor)
+        v, rows = stack.values, slice(0, stack.rows(i))
+        color = method_color(clip.method)
+        name = f'<span style="color:{color}"><b>{label}</b></span>'
+        if stack.rows(i) == 0:
+            return f"{name}: not trained yet"
+        last = stack.rows(i) - 1
+        final = v["val_loss"][last, i]
+        finals = np.array(
+            [
+                v["val_loss"][stack.rows(j) - 1, j]
+                for j in range(len(stack.members))
+                if stack.rows(j)
+            ]
+        )
+        best = np.nanmin(finals) if np.isfinite(finals).any() else math.nan
+        diverged = bool(v["diverged"][last, i] > 0)
+        word = "final" if stack.finished[i] else "latest"
+        if diverged:
+            result = "diverged"
+        else:
+            result = f"{word} loss {final:.4g} ({final / best:.2f} x the best at this batch size)"
+        if clip.method == "none":
+            return f"{name}: {result}; outliers pass unchanged"
+        threshold = stack.members[i].threshold
+        at = "" if math.isnan(threshold) else f" at {tick_text(threshold)}"
+        if clip.rule != "fixed":
+            at = f" ({clip.rule} rule)"
+        share = _finite_mean(v["clipped_share"][rows, i])
+        passed = _finite_mean(v["outlier_pass"][rows, i])
+        through = "no outliers seen yet" if math.isnan(passed) else f"{passed:.0%}"
+        return (
+            f"{name}{at}: {clip_regime(share, clip.spec.counts)}; outlier pass-through "
+            f"{through}; {result}"
+        )
+
+    def _draw_histogram(self, stack: StackData | None) -> None:
+        clips = [c for c, _ in self._labels() if c.method != "none"]
+        empty = stack is None or stack.example_norms is None or stack.outlier is None or not clips
+        for item in (self.hist_clean, self.hist_outlier, *self.hist_lines.values()):
+            item.setVisible(not empty)
+        if empty or stack is None or stack.example_norms is None or stack.outlier is None:
+            return
+        clip = next((c for c in clips if c.spec.compares == EXAMPLE_NORM), clips[0])
+        i = member_for(stack.members, clip.display_name, self.factor)
+        norms, flags = stack.example_norms[i], stack.outlier[i]
+        finite = np.isfinite(norms) & (norms > 0)
+        logs = np.log10(norms[finite])
+        if logs.size == 0:
+            return
+        edges = np.linspace(logs.min() - 0.05, logs.max() + 0.05, 31)
+        clean, _ = np.histogram(logs[~flags[finite]], edges)
+        outlier, _ = np.histogram(logs[flags[finite]], edges)
+        self.hist_clean.setData(edges, clean)
+        self.hist_outlier.setData(edges, outlier)
+        for label, line in self.hist_lines.items():
+            j = member_for(stack.members, label, self.factor)
+            level = stack.values["clip_level"][max(stack.rows(j) - 1, 0), j]
+            shown = math.isfinite(level) and level > 0 and self.method_checks[label].isChecked()
+            line.setVisible(shown)
+            if shown:
+                line.setPos(math.log10(level))
+        self.plots["hist"].setLabel(
+            "bottom", f"log10 of the norm, latest step ({clip.display_name} member)"
+        )
+
+    def _on_mouse_moved(self, event: tuple[object]) -> None:
+        stack = self.model.current_stack(self.batch_size)
+        plot = self.plots["loss"]
+        position = event[0]
+        if stack is None or not plot.sceneBoundingRect().contains(position):
+            return
+        step = plot.vb.mapSceneToView(position).x()
+        row = int(np.nanargmin(np.abs(stack.steps - step)))
+        parts = [f"step {int(stack.steps[row])}"]
+        for clip, _ in self._labels():
+            i = member_for(stack.members, clip.display_name, self.factor)
+            if row < stack.rows(i):
+                parts.append(
+                    f"{clip.display_name}: loss {stack.values['val_loss'][row, i]:.4g}, "
+                    f"norm {stack.values['grad_norm_pre'][row, i]:.3g}"
+                )
+        self.hover_label.setText("  |  ".join(parts))
+
+
+def _finite_mean(values: np.ndarray) -> float:
+    finite = values[np.isfinite(values)]
+    return float(finite.mean()) if finite.size else math.nan

@@ -1,0 +1,185 @@
+"""The runner: trains a study's entries on a worker pool and routes results to their models.
+
+The window, `gradfence shot` and the handout all train through it. It turns an entry into jobs
+(a fan: its batch sizes, the smallest first and the members nearest the slider before the rest;
+a map: its chunks and its norm profile), hands them to the pool, and calls the entry's methods
+with what comes back. It gives one progress figure over what it was asked to train and a status
+line in plain words. A removed entry stops training. No Qt.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Sequence
+from typing import Any, Protocol
+
+from core.entry_model import TRAINING, TrainedEntry
+from core.fan import fan_factors, fan_members
+from core.fan_model import FanModel
+from core.map_model import MapModel
+from core.scenario import dumps_scenario
+from core.study import Study, StudyEvent
+from core.work import CHUNK, FAN, PROFILE, Handler, Job
+
+NEAR = 2  # fan thresholds on each side of the slider's that train first
+
+
+class Pool(Protocol):
+    def new_run_id(self) -> int: ...
+
+    def submit(self, job: Job, handler: Handler) -> None: ...
+
+    def stop(self, run_id: int) -> None: ...
+
+
+def fan_jobs(model: FanModel, focus: float | None = None) -> list[tuple[int, tuple[int, ...]]]:
+    """(batch size, member columns) in the order to train them.
+
+    With `focus` (the slider's factor), each batch size first trains the members within NEAR
+    fan steps of it (and the members that have no threshold fan), smallest batch first, so the
+    curves under the slider arrive first; then the rest of every batch size.
+    """
+    members = fan_members(model.scenario)
+    everyone = tuple(range(len(members)))
+    sizes = sorted(model.batch_sizes)
+    if focus is None:
+        return [(b, everyone) for b in sizes]
+    factors = fan_factors()
+    centre = int(min(range(len(factors)), key=lambda i: abs(math.log(factors[i] / focus))))
+    near = set(range(centre - NEAR, centre + NEAR + 1))
+    first: list[int] = []
+    position: dict[str, int] = {}
+    for column, member in enumerate(members):
+        fanned = sum(m.name == member.name for m in members) > 1
+        slot = position.get(member.name, 0)
+        position[member.name] = slot + 1
+        if not fanned or slot in near:
+            first.append(column)
+    rest = tuple(c for c in everyone if c not in first)
+    jobs = [(b, tuple(first)) for b in sizes]
+    if rest:
+        jobs += [(b, rest) for b in sizes]
+    return jobs
+
+
+class Runner:
+    """Trains entries of one study on one pool."""
+
+    def __init__(self, study: Study, pool: Pool) -> None:
+        self.study, self.pool = study, pool
+        self._started: dict[int, float] = {}  # id(entry) -> time.monotonic() it began
+        self._batch: list[TrainedEntry] = []  # what the progress figure is over
+        study.subscribe(self._on_study_event)
+
+    def close(self) -> None:
+        self.stop_all()
+        self.study.unsubscribe(self._on_study_event)
+
+    # -- training -----------------------------------------------------------------------------
+
+    def train(self, entry: TrainedEntry, focus: float | None = None) -> None:
+        """Start training `entry` unless it is training already."""
+        if entry.status == TRAINING:
+            return
+        run_id = self.pool.new_run_id()
+        text = dumps_scenario(entry.scenario)
+        handler = self._handler_for(entry)
+        if isinstance(entry, FanModel):
+            entry.begin(run_id)
+            for batch, columns in fan_jobs(entry, focus):
+                self.pool.submit(Job(run_id, FAN, text, batch, columns), handler)
+        elif isinstance(entry, MapModel):
+            chunks = entry.begin(run_id)
+            self.pool.submit(Job(run_id, PROFILE, text), handler)
+            for chunk in chunks:
+                self.pool.submit(Job(run_id, CHUNK, text, chunk.batch_size, chunk=chunk), handler)
+        else:
+            raise TypeError(f"cannot train {type(entry).__name__}")
+        if not self.training():
+            self._batch = []
+        self._batch = [e for e in self._batch if e is not entry] + [entry]
+        self._started[id(entry)] = time.monotonic()
+
+    def train_all(self, entries: Sequence[TrainedEntry] | None = None) -> list[TrainedEntry]:
+        """Train every entry given (default: every entry of the study that trains)."""
+        todo = list(entries if entries is not None else self.study.trained_entries)
+        for entry in todo:
+            self.train(entry)
+        return todo
+
+    def train_pending(self) -> list[TrainedEntry]:
+        """Train the entries without current results; returns them."""
+        return self.train_all(self.study.pending())
+
+    def stop(self, entry: TrainedEntry) -> None:
+        if entry.status == TRAINING:
+            self.pool.stop(entry.run_id)
+            entry.stop()
+
+    def stop_all(self) -> None:
+        for entry in self.study.trained_entries:
+            self.stop(entry)
+        for entry in self._batch:
+            self.stop(entry)
+
+    def training(self) -> list[TrainedEntry]:
+        return [e for e in self._batch if e.status == TRAINING]
+
+    @property
+    def busy(self) -> bool:
+        return bool(self.training())
+
+    def _handler_for(self, entry: TrainedEntry) -> Handler:
+        def handle(kind: str, run_id: int, batch: int, payload: Any) -> None:
+            if kind == "error":
+                entry.fail(run_id, str(payload))
+            elif isinstance(entry, FanModel):
+                if kind == "records":
+                    columns, records = payload
+                    entry.add_records(run_id, batch, columns, records)
+                elif kind == "done":
+                    entry.finish(run_id, batch, payload)
+            elif isinstance(entry, MapModel):
+                if kind == "rows":
+                    entry.add_rows(run_id, payload)
+                elif kind == "profile":
+                    entry.add_profile(run_id, payload)
+
+        return handle
+
+    # -- telling ------------------------------------------------------------------------------
+
+    def progress(self) -> float:
+        """One figure, 0..1, over the entries trained since the runner was last idle."""
+        if not self._batch:
+            return 1.0
+        return sum(1.0 if e.status != TRAINING else e.progress() for e in self._batch) / len(
+            self._batch
+        )
+
+    def seconds_left(self, entry: TrainedEntry) -> float | None:
+        started = self._started.get(id(entry))
+        share = entry.progress()
+        if started is None or entry.status != TRAINING or share < 0.02:
+            return None
+        elapsed = time.monotonic() - started
+        return elapsed * (1.0 - share) / share
+
+    def status_text(self) -> str:
+        """`training 'Batch size 8': 2 of 4 batch sizes, about 12 s left`, or `ready`."""
+        busy = self.training()
+        if not busy:
+            return "ready"
+        entry = busy[0]
+        text = f"training '{entry.title}': {entry.progress_text()}"
+        left = self.seconds_left(entry)
+        text += f", about {left:.0f} s left" if left is not None else ", starting"
+        if len(busy) > 1:
+            text += f"; {len(busy) - 1} more {'entry' if len(busy) == 2 else 'entries'} queued"
+        return text
+
+    def _on_study_event(self, event: StudyEvent) -> None:
+        entry = event.entry
+        if event.what == "removed" and isinstance(entry, FanModel | MapModel):
+            self.stop(entry)
