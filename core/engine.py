@@ -58,6 +58,8 @@ GRADIENT_METRICS = (
     "noise_scale",
     "lr",
     "batch_outliers",
+    "clip_level",  # the threshold applied this step: inf while a rule waits, NaN for none
+    "skipped",  # 1.0 when on_spike = "skip" dropped the step
 )
 
 
@@ -552,6 +554,7 @@ class Engine:
         K = len(members)
         self.example_norms = np.zeros((K, self.steps, self.batch_size)) if trace else None
         self.alive = torch.ones(K, dtype=torch.bool)
+        self.unclipped = torch.tensor([m.method == "none" for m in members])
         self.nobody = torch.zeros(K, dtype=torch.bool)
         self.any_dead = False
         self.diverged_at: list[int | None] = [None] * K
@@ -674,6 +677,8 @@ class Engine:
             "noise_scale": self._noise_scale(detail),
             "lr": torch.full_like(val_loss, self.lr),
             "batch_outliers": detail["batch_outliers"],
+            "clip_level": torch.where(self.unclipped, math.nan, result.levels),
+            "skipped": result.skip.to(self.dtype),
         }
         dead = (~self.alive).numpy()
         out = {}

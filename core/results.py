@@ -99,6 +99,8 @@ def format_value(value: float) -> str:
     """Shortest text that reads back to the same float, so reruns give identical files."""
     if math.isnan(value):
         return "nan"
+    if math.isinf(value):  # clip_level before a rule clips, example_norm_max of a NaN example
+        return "inf" if value > 0 else "-inf"
     if value == int(value) and abs(value) < 1e15:
         return str(int(value))
     return repr(float(value))
