@@ -74,12 +74,26 @@ def suggest(
     wanted = spikes.mean() if clip_share is None else clip_share
     target = float(min(wanted, max_clip_share)) if n else 0.0
     budget = math.floor(target * n + 1e-9)
-    rules = [
-        _suggest_fixed(watched, spikes, budget, base, precision),
-        _suggest_percentile(watched, spikes, budget, base, precision),
-        _suggest_by_search(watched, spikes, budget, replace(base, rule="ema"), "k", precision),
-        _suggest_by_search(watched, spikes, budget, replace(base, rule="zscore"), "z", precision),
-    ]
+    rules = [_suggest_fixed(watched, spikes, budget, base, precision)]
+    finite = int(np.isfinite(watched).sum())
+    # A rule clips nothing before its warm-up is over (percentile: more than `warmup` values;
+    # ema: max(warmup, 1) values before the step; zscore: max(warmup, 2)).
+    for rule, parameter, needed in (
+        ("percentile", "percentile", base.warmup + 1),
+        ("ema", "k", max(base.warmup, 1) + 1),
+        ("zscore", "z", max(base.warmup, 2) + 1),
+    ):
+        if finite < needed:
+            note = f"the log has {finite} finite norms, too few for a warm-up of {base.warmup}"
+            rules.append(Suggestion(rule, parameter, None, math.nan, 0, None, note))
+        elif rule == "percentile":
+            rules.append(_suggest_percentile(watched, spikes, budget, base, precision))
+        else:
+            rules.append(
+                _suggest_by_search(
+                    watched, spikes, budget, replace(base, rule=rule), parameter, precision
+                )
+            )
     separation, note = separate(watched, spikes)
     basis = "spikes" if clip_share is None else "share"
     return Suggestions(target, max_clip_share, basis, rules, separation, note)

@@ -166,3 +166,11 @@ def test_the_example_log_gives_back_the_noise_it_was_made_with() -> None:
     ):
         half_width = (interval.high - interval.low) / 2
         assert abs(estimate - truth) < 1.5 * half_width  # within the 95% interval's reach
+
+
+def test_a_log_shorter_than_the_warm_up_gets_no_adaptive_suggestion() -> None:
+    advice = advise(plain_log(np.array([1.0, 2.0, 1.5, 1.2])))
+    by_rule = {g.rule: g for g in advice.suggestions.rules}
+    assert by_rule["fixed"].value is not None
+    for rule in ("percentile", "ema", "zscore"):
+        assert by_rule[rule].value is None and "too few for a warm-up of 25" in by_rule[rule].note
