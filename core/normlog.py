@@ -528,15 +528,18 @@ def _json_column(
         return np.asarray(cells, dtype=np.float64)
     except (ValueError, OverflowError):
         for i, cell in enumerate(cells):
-            if isinstance(cell, str):
-                try:
-                    float(cell)
-                except ValueError:
-                    raise GradfenceInputError(
-                        f"{name}, line {line_numbers[i]}: {column!r} holds {cell!r}, which is "
-                        'not a number; write a number (or null, "inf" or "nan").'
-                    ) from None
-        raise
+            try:
+                float(cell if cell is not None else math.nan)
+            except (ValueError, OverflowError):
+                raise GradfenceInputError(
+                    f"{name}, line {line_numbers[i]}: {column!r} holds {json.dumps(cell)[:40]}, "
+                    'which does not read as a number; write a number (or null, "inf" or '
+                    '"nan").'
+                ) from None
+        raise GradfenceInputError(
+            f"{name}: the column {column!r} does not read as numbers; write numbers, null, "
+            '"inf" or "nan".'
+        ) from None
 
 
 # ---------------------------------------------------------------------------------------------

@@ -75,7 +75,8 @@ def find_spikes(norm: np.ndarray, rule: SpikeRule = SpikeRule()) -> np.ndarray:
 
 
 def _trailing_minimum(values: np.ndarray, w: int) -> np.ndarray:
-    """min(values[i : i + w]) for every i, in O(n) (van Herk 1992, Gil and Werman 1993)."""
+    """min(values[i : i + w]) for every i, in O(n): block prefix and suffix minima (van Herk
+    1992, Gil and Werman 1993; cited from memory)."""
     n = len(values)
     blocks = -(-n // w)
     padded = np.full(blocks * w, np.inf)

@@ -1,9 +1,10 @@
 """Order statistics and rank counts of every prefix of a sequence, for all prefixes at once.
 
-A wavelet matrix (Claude, Navarro and Ordóñez 2015, "The wavelet matrix", Information Systems 47)
-over the ranks of the values: one bit level per bit of a rank, each level a stable partition of
-the previous one by that bit with a prefix count of its zeros. A query descends the levels once,
-so a million queries cost about twenty vectorised passes instead of a million sorts.
+A wavelet matrix (Claude, Navarro and Ordóñez 2015, "The wavelet matrix", Information Systems;
+cited from memory) over the ranks of the values: one bit level per bit of a rank, each level a
+stable partition of the previous one by that bit with a prefix count of its zeros. A query
+descends the levels once, so a million queries cost about twenty vectorised passes instead of a
+million sorts.
 """
 
 from __future__ import annotations

@@ -181,6 +181,8 @@ BAD_LOGS = [
         "bad.csv, line 2: 'grad_norm'",
     ),
     ('{"step": 1, "grad_norm": 1}\n{"step": 2, "grad_norm": 1\n', "bad.csv, line 2: not a JSON"),
+    ('{"step": 1, "grad_norm": "abc"}\n', "bad.csv, line 1: 'grad_norm' holds \"abc\""),
+    ('{"step": 1, "grad_norm": 1' + "0" * 400 + "}\n", "bad.csv, line 1: 'grad_norm' holds 1000"),
     ('{"step": 1, "grad_norm": 1}\n{"grad_norm": 1}\n', "bad.csv, line 2: the object has no"),
 ]
 
