@@ -12,6 +12,7 @@ import math
 import numpy as np
 
 from core.scenario import ClipConfig
+from core.wavelet import PrefixOrder
 
 
 class FixedRule:
@@ -20,6 +21,10 @@ class FixedRule:
 
     def level(self, watched: float) -> float:
         return self.threshold
+
+    def levels(self, watched: np.ndarray) -> np.ndarray:
+        """What `level` returns at every step of `watched`."""
+        return np.full(len(watched), float(self.threshold))
 
 
 class PercentileRule:
@@ -36,6 +41,39 @@ class PercentileRule:
         if len(self.history) <= self.warmup or not self.history:
             return math.inf
         return float(np.percentile(self.history, self.percentile))
+
+    def levels(self, watched: np.ndarray) -> np.ndarray:
+        """What `level` returns at every step of `watched`, from a fresh history, to the bit.
+
+        np.percentile's default (linear) method, mirrored: virtual index (h - 1) * p / 100,
+        its floor and the next order statistic (both the maximum at or past the end), and
+        numpy's two-sided lerp; the order statistics of every prefix come from one wavelet
+        matrix. The rule's own state is neither read nor changed.
+        """
+        values = np.asarray(watched, dtype=np.float64)
+        finite = np.isfinite(values)
+        count = np.cumsum(finite)  # history length after each step
+        out = np.full(len(values), math.inf)
+        active = (count > self.warmup) & (count > 0)
+        if not active.any():
+            return out
+        h = count[active]
+        q = np.true_divide(self.percentile, 100)  # as np.percentile turns p into a quantile
+        virtual = (h - 1) * q
+        floor = np.floor(virtual)
+        above = virtual >= h - 1
+        previous = np.where(above, -1.0, floor)  # numpy's index; -1 is the last (the maximum)
+        gamma = virtual - previous
+        low = np.where(above, h - 1, floor).astype(np.int64)
+        high = np.where(above, h - 1, floor + 1).astype(np.int64)
+        stats = PrefixOrder(values[finite]).kth(np.concatenate((h, h)), np.concatenate((low, high)))
+        a, b = stats[: len(h)], stats[len(h) :]
+        diff = b - a
+        level = a + diff * gamma
+        upper = gamma >= 0.5
+        level[upper] = b[upper] - diff[upper] * (1 - gamma[upper])
+        out[active] = level
+        return out
 
 
 class EmaRule:
@@ -56,6 +94,27 @@ class EmaRule:
         if math.isfinite(watched):
             self.mean = self.alpha * self.mean + (1.0 - self.alpha) * min(watched, limit)
         return limit
+
+    def levels(self, watched: np.ndarray) -> np.ndarray:
+        """What `level` returns at every step of `watched`, from a fresh start, to the bit."""
+        values = np.asarray(watched, dtype=np.float64)
+        out = np.full(len(values), math.inf)
+        start, seen = _warm_up(values, max(self.warmup, 1))
+        if start >= len(values):
+            return out
+        mean = float(np.mean(seen))
+        k, alpha, keep = self.k, self.alpha, 1.0 - self.alpha
+        limits: list[float] = []
+        append = limits.append
+        # The recursion of `level` over Python floats, the same operations in the same order;
+        # `w - w == 0.0` is math.isfinite(w) without a call.
+        for w in values[start:].tolist():
+            limit = k * mean
+            append(limit)
+            if w - w == 0.0:
+                mean = alpha * mean + keep * (limit if limit < w else w)  # min(w, limit)
+        out[start:] = limits
+        return out
 
 
 class ZScoreRule:
@@ -91,8 +150,59 @@ class ZScoreRule:
             self.var = self.alpha * (self.var + (1.0 - self.alpha) * delta * delta)
         return limit
 
+    def levels(self, watched: np.ndarray) -> np.ndarray:
+        """What `level` returns at every step of `watched`, from a fresh start, to the bit."""
+        values = np.asarray(watched, dtype=np.float64)
+        out = np.full(len(values), math.inf)
+        start, seen = _warm_up(values, max(self.warmup, 2))
+        if start >= len(values):
+            return out
+        mean, var = float(np.mean(seen)), float(np.var(seen))
+        z_level, alpha, keep = self.z_level, self.alpha, 1.0 - self.alpha
+        z_squared = self.z_level**2
+        inf, sqrt = math.inf, math.sqrt
+        limits: list[float] = []
+        append = limits.append
+        # The recursion of `level` over Python floats, the same operations in the same order;
+        # `w - w == 0.0` is math.isfinite(w) without a call. A non-finite norm has z = inf.
+        for w in values[start:].tolist():
+            sigma = sqrt(var)
+            if w - w == 0.0:
+                z = (w - mean) / (sigma + 1e-6)
+                if z > z_level:
+                    limit = mean + (z_squared / z) * sigma
+                    append(limit)
+                    if limit - limit != 0.0:
+                        continue
+                    delta = limit - mean
+                else:
+                    append(inf)
+                    delta = w - mean
+            else:
+                limit = mean + (z_squared / inf) * sigma
+                append(limit if inf > z_level else inf)
+                if not inf > z_level or limit - limit != 0.0:
+                    continue
+                delta = limit - mean
+            mean += keep * delta
+            var = alpha * (var + keep * delta * delta)
+        out[start:] = limits
+        return out
+
 
 Rule = FixedRule | PercentileRule | EmaRule | ZScoreRule
+
+
+def _warm_up(values: np.ndarray, needed: int) -> tuple[int, np.ndarray]:
+    """The first step after the warm-up of a rule that needs `needed` finite values, and them.
+
+    The step whose value completes the warm-up still returns inf; `len(values)` when the
+    warm-up never completes.
+    """
+    positions = np.flatnonzero(np.isfinite(values))
+    if len(positions) < needed:
+        return len(values), values[positions]
+    return int(positions[needed - 1]) + 1, values[positions[:needed]]
 
 
 def make_rule(clip: ClipConfig) -> Rule:
