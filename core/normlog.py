@@ -595,9 +595,13 @@ def _build(
     norm = values["norm"]
     precision = "float64"
     if source == "metrics":
+        # The tool writes float32 results at float32's precision ("0.2"): read back, each is
+        # the float32 nearest its text, which is the engine's own value.
         finite = norm[np.isfinite(norm)]
-        if np.array_equal(finite.astype(np.float32).astype(np.float64), finite):
+        single = finite.astype(np.float32).astype(np.float64)
+        if np.array_equal(single, finite) or np.allclose(single, finite, rtol=2**-23, atol=0):
             precision = "float32"
+            norm = norm.astype(np.float32).astype(np.float64)
     read_from = dict(wanted.columns)
     return NormLog(
         name=name,
