@@ -20,7 +20,7 @@ def add_parser(subparsers: Any) -> None:
         help="replay clipping rules on your own run's log of gradient norms and suggest "
         "thresholds (open-loop)",
         description="Read a log of pre-clip gradient norms (CSV with a header, JSON Lines, or a "
-        "metrics.csv of `gradfence run`), replay every threshold rule on it, suggest thresholds, "
+        "metrics.csv of `gradfence train`), replay every threshold rule on it, suggest thresholds, "
         "estimate gradient noise from a second, smaller-batch norm, and carry a threshold to "
         "another batch size. The replay is open-loop: it shows what each rule would have "
         "decided on these norms, not how training would have gone with it.",

@@ -1,8 +1,9 @@
 """The `gradfence` command line. Exit codes: 0 success, 2 bad input, 1 internal failure.
 
 Commands: (none) or `open STUDY` the desktop app; `train PRESET` one preset's members; `map
-PRESET` the batch size x threshold x seed map; `handout STUDY` one HTML file; `shot STUDY` a
-picture of the window; `check FILE...`; `presets`. The commands import what they need when they
+PRESET` the batch size x threshold x seed map; `advise LOG` advice on your own run's log of
+gradient norms; `handout STUDY` one HTML file; `shot STUDY` a picture of the window; `check
+FILE...`; `presets`. The commands import what they need when they
 run, so that `gradfence --help` and the window start fast.
 """
 
@@ -148,6 +149,10 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("files", type=Path, nargs="+", metavar="FILE")
 
     commands.add_parser("presets", help="list the shipped and your own presets, with their files")
+
+    from app import advise_command
+
+    advise_command.add_parser(commands)
     return parser
 
 
@@ -207,6 +212,10 @@ def _dispatch(argv: list[str]) -> int:
         from app.cli_commands import command_check
 
         return command_check(args.files)
+    if args.command == "advise":
+        from app import advise_command
+
+        return advise_command.run(args)
     from app.cli_commands import command_presets
 
     return command_presets()

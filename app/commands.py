@@ -10,6 +10,8 @@ from __future__ import annotations
 from PySide6 import QtGui
 
 from core.entry_model import EntryModel, NoteModel, TrainedEntry
+from core.log_entry import LogSource
+from core.log_model import LogModel
 from core.scenario import Scenario
 from core.study import Study
 
@@ -63,6 +65,18 @@ class SetScenario(QtGui.QUndoCommand):
 
     def undo(self) -> None:
         self.model.set_scenario(self.old)
+
+
+class SetLogSource(QtGui.QUndoCommand):
+    def __init__(self, model: LogModel, source: LogSource) -> None:
+        super().__init__(f'edit the log of "{model.title}"')
+        self.model, self.old, self.new = model, model.source, source
+
+    def redo(self) -> None:
+        self.model.set_source(self.new)
+
+    def undo(self) -> None:
+        self.model.set_source(self.old)
 
 
 class EditNote(QtGui.QUndoCommand):

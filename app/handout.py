@@ -22,6 +22,7 @@ from PySide6 import QtCore, QtGui, QtWidgets
 
 from app.axes import tick_text
 from app.fan_view import FanView
+from app.log_view import LogView, percent, rule_title, summary_lines
 from app.map_view import MapView
 from app.views import make_view
 from core import __version__
@@ -30,8 +31,10 @@ from core.entry_model import FAILED, NoteModel
 from core.fan import member_for
 from core.fan_model import FanModel
 from core.fileio import write_text_atomic
+from core.log_model import LogModel
 from core.map_model import MapModel
 from core.profile import profile_sentence
+from core.replay import OPEN_LOOP
 from core.scenario import dumps_scenario
 from core.study import Study
 
@@ -43,6 +46,8 @@ h2 { font-size: 1.35em; margin-top: 2.2em; padding: 0.15em 0 0.15em 0.6em; }
 h2.note { border-left: 6px solid #b8a98a; }
 h2.fan { border-left: 6px solid #2f7f8f; }
 h2.map { border-left: 6px solid #6e4c9a; }
+h2.log { border-left: 6px solid #9a6b2f; }
+.lines { white-space: pre-wrap; font-size: 0.9em; }
 .kind { font-size: 0.7em; font-weight: bold; margin-right: 0.5em; }
 .headline { color: #555555; font-size: 0.95em; margin-top: -0.4em; }
 .small { color: #777777; font-size: 0.8em; }
@@ -80,7 +85,7 @@ def png_data_uri(image: QtGui.QImage) -> str:
     return "data:image/png;base64," + base64.b64encode(data).decode("ascii")
 
 
-def _plot_image(view: FanView | MapView) -> str:
+def _plot_image(view: FanView | MapView | LogView) -> str:
     import pyqtgraph.exporters as exporters
 
     exporter = exporters.ImageExporter(view.canvas.ci)
@@ -168,9 +173,38 @@ def map_summary(model: MapModel) -> str:
     return "".join(parts)
 
 
+def log_summary(model: LogModel) -> str:
+    """Every rule replayed on the log, and what `gradfence advise` says after the table."""
+    advice = model.advice
+    if advice is None:
+        return ""
+    spikes = advice.spike_count
+    rows = [
+        [
+            rule_title(r),
+            r.clip.on_spike,
+            percent(r.clip_rate),
+            percent(r.skip_rate) if r.clip.on_spike == "skip" else "-",
+            " / ".join(percent(v) for v in r.clip_rate_thirds),
+            f"{r.spikes_caught} of {spikes}" if spikes else "-",
+        ]
+        for r in advice.replays
+    ]
+    header = ["rule", "on a spike", "clips", "skips", "by third", "spikes caught"]
+    lines = html.escape("\n".join(line for line in summary_lines(advice) if line.strip()))
+    return _table(header, rows) + f'<p class="lines">{lines}</p>'
+
+
+def _log_html(model: LogModel) -> list[str]:
+    return [
+        f'<p class="small">{html.escape(str(model.source.path))}</p>',
+        f"<p><i>{html.escape(OPEN_LOOP)}</i></p>",
+    ]
+
+
 def entry_html(index: int, model: object) -> str:
     """One entry: its heading, then its note, or its plots, tables and scenario."""
-    if not isinstance(model, NoteModel | FanModel | MapModel):
+    if not isinstance(model, NoteModel | FanModel | MapModel | LogModel):
         raise TypeError(f"no handout form for {type(model).__name__}")
     title = html.escape(model.title)
     head = (
@@ -180,11 +214,13 @@ def entry_html(index: int, model: object) -> str:
     if isinstance(model, NoteModel):
         return head + f'<div class="note">{markdown_html(model.text)}</div>'
     parts = [head]
+    if isinstance(model, LogModel):
+        parts += _log_html(model)
     if not model.has_current_results():
         parts.append(f'<p class="warn">No results: {html.escape(model.state_text())}.</p>')
     else:
         view = make_view(model, editable=False)
-        assert isinstance(view, FanView | MapView)
+        assert isinstance(view, FanView | MapView | LogView)
         view.setAttribute(QtCore.Qt.WidgetAttribute.WA_DontShowOnScreen)
         view.resize(*VIEW_SIZE)
         view.show()  # laid out offscreen, on its own: no window is built for a handout
@@ -195,10 +231,17 @@ def entry_html(index: int, model: object) -> str:
         _settle()
         parts.append(f'<p class="headline">{html.escape(view.headline())}</p>')
         parts.append(f'<img alt="{title}: plots" src="{_plot_image(view)}">')
-        parts.append(fan_summary(model) if isinstance(model, FanModel) else map_summary(model))
+        if isinstance(model, FanModel):
+            parts.append(fan_summary(model))
+        elif isinstance(model, MapModel):
+            parts.append(map_summary(model))
+        else:
+            parts.append(log_summary(model))
         view.detach()
         view.close()
         view.deleteLater()
+    if isinstance(model, LogModel):
+        return "\n".join(parts)
     scenario = model.scenario
     toml = html.escape(dumps_scenario(scenario))
     parts.append(f"<details><summary>Scenario as TOML</summary><pre>{toml}</pre></details>")
@@ -263,14 +306,14 @@ def write_handout(
     runner = Runner(study, pool)
     try:
         todo = runner.train_pending()
-        cached = len(study.trained_entries) - len(todo)
+        cached = len(study.workable) - len(todo)
         note = f"{len(todo)} to train, {cached} cached"
         while runner.busy:
             pool.wait(0.05)
             report(runner.progress(), note)
         report(1.0, note)
         text = handout_html(study)
-        failed = [e.title for e in study.trained_entries if e.status == FAILED]
+        failed = [e.title for e in study.workable if e.status == FAILED]
     finally:
         runner.close()
         pool.shutdown()

@@ -19,13 +19,16 @@ from app import commands
 from app.autosave import Autosave
 from app.entry_card import EntryCard
 from app.file_actions import StudyFiles
+from app.log_form import LogForm
 from app.presets_dialog import PresetBrowser
 from app.scenario_form import ScenarioForm
 from app.toml_editor import TomlEditor
-from app.views import EntryView, TrainedView, make_view
-from core.entry_model import TRAINING, EntryModel, NoteModel, TrainedEntry
+from app.views import EntryView, WorkedView, make_view
+from core.entry_model import TRAINING, EntryModel, NoteModel, TrainedEntry, WorkedEntry
 from core.errors import GradfenceInputError
 from core.fan_model import FanModel
+from core.log_entry import LogSource
+from core.log_model import LogModel
 from core.map_model import MapModel
 from core.pool import WorkerPool
 from core.presets import PresetInfo, save_user_preset
@@ -54,6 +57,7 @@ class MainWindow(QtWidgets.QMainWindow):
     add_note_action: QtGui.QAction
     add_fan_action: QtGui.QAction
     add_map_action: QtGui.QAction
+    add_log_action: QtGui.QAction
     rename_action: QtGui.QAction
     move_up_action: QtGui.QAction
     move_down_action: QtGui.QAction
@@ -77,8 +81,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self.cards: list[EntryCard] = []
         self.selected_card: EntryCard | None = None
         self.auto_train = True  # an edit retrains the entry after a short pause
-        self._inspector_pages: list[ScenarioForm | TomlEditor] = []
-        self._to_train: dict[int, TrainedEntry] = {}
+        self._inspector_pages: list[ScenarioForm | TomlEditor | LogForm] = []
+        self._to_train: dict[int, WorkedEntry] = {}
         self.presentation: PresentationWindow | None = None
         self.undo_stack = QtGui.QUndoStack(self)
         self.files = StudyFiles(self)
@@ -220,6 +224,10 @@ class MainWindow(QtWidgets.QMainWindow):
     def map_views(self) -> list[Any]:
         return [c.body for c in self.cards if isinstance(c.model, MapModel)]
 
+    @property
+    def log_views(self) -> list[Any]:
+        return [c.body for c in self.cards if isinstance(c.model, LogModel)]
+
     def _update_title(self) -> None:
         path = self.study.path
         name = path.name if path is not None else "not saved"
@@ -246,6 +254,10 @@ class MainWindow(QtWidgets.QMainWindow):
     def commit_scenario(self, model: TrainedEntry, scenario: Scenario) -> None:
         if scenario != model.scenario:
             self.undo_stack.push(commands.SetScenario(model, scenario))
+
+    def commit_log_source(self, model: LogModel, source: LogSource) -> None:
+        if source != model.source:
+            self.undo_stack.push(commands.SetLogSource(model, source))
 
     def _commit_note(self, model: NoteModel, title: str, text: str) -> None:
         self.undo_stack.push(commands.EditNote(model, title, text))
@@ -284,6 +296,23 @@ class MainWindow(QtWidgets.QMainWindow):
             info.scenario.name, info.scenario, origin=record
         )
         return self.add_entry(model)
+
+    def add_log(self, path: Path | None = None) -> EntryCard | None:
+        """A log entry for a log file (asked for when `path` is None)."""
+        if path is None:
+            name, _ = QtWidgets.QFileDialog.getOpenFileName(
+                self,
+                "A log of gradient norms",
+                str(self.study.folder()),
+                "Logs (*.csv *.jsonl *.ndjson *.json);;All files (*)",
+            )
+            if not name:
+                return None
+            path = Path(name)
+        model = LogModel(path.stem, LogSource(path.resolve()))
+        card = self.add_entry(model)
+        self.runner.train(model)
+        return card
 
     def browse_presets(self, kind: str = "fan") -> None:
         dialog = PresetBrowser(self, kind)
@@ -340,27 +369,27 @@ class MainWindow(QtWidgets.QMainWindow):
 
     # -- training ----------------------------------------------------------------------------
 
-    def _on_train_requested(self, view: TrainedView, focus: float) -> None:
+    def _on_train_requested(self, view: WorkedView, focus: float) -> None:
         self.runner.train(view.model, focus=focus)
 
     def train_selected(self) -> None:
         card = self.selected_card
-        if card is not None and isinstance(card.model, FanModel | MapModel):
+        if card is not None and isinstance(card.model, FanModel | MapModel | LogModel):
             self.runner.train(card.model, focus=getattr(card.body, "factor", None))
 
     def train_all(self) -> None:
         for card in self.cards:
-            if isinstance(card.model, FanModel | MapModel):
+            if isinstance(card.model, FanModel | MapModel | LogModel):
                 self.runner.train(card.model, focus=getattr(card.body, "factor", None))
 
     def forget_selected(self) -> None:
         card = self.selected_card
-        if card is not None and isinstance(card.model, FanModel | MapModel):
+        if card is not None and isinstance(card.model, FanModel | MapModel | LogModel):
             self.runner.stop(card.model)
             card.model.reset()
 
     def _schedule_retrain(self, entry: EntryModel | None) -> None:
-        if not self.auto_train or not isinstance(entry, FanModel | MapModel):
+        if not self.auto_train or not isinstance(entry, FanModel | MapModel | LogModel):
             return
         if entry.has_current_results():
             return  # an undo back to the results' own scenario
@@ -376,7 +405,7 @@ class MainWindow(QtWidgets.QMainWindow):
                 self.runner.train(entry, focus=getattr(card.body, "factor", None))
 
     def all_finished(self) -> bool:
-        return all(e.status != TRAINING for e in self.study.trained_entries)
+        return all(e.status != TRAINING for e in self.study.workable)
 
     # -- selection and inspector -------------------------------------------------------------
 
@@ -399,6 +428,10 @@ class MainWindow(QtWidgets.QMainWindow):
             self._inspector_pages = [form, editor]
             self.inspector.addTab(form, "Form")
             self.inspector.addTab(editor, "TOML")
+        elif isinstance(model, LogModel):
+            log_form = LogForm(model, commit=self.commit_log_source)
+            self._inspector_pages = [log_form]
+            self.inspector.addTab(log_form, "Log")
         else:
             hint = QtWidgets.QLabel("A note: double-click it in the study to edit its Markdown.")
             hint.setWordWrap(True)
@@ -449,7 +482,7 @@ class MainWindow(QtWidgets.QMainWindow):
         if self.presentation is not None:
             self.presentation.refresh_if_dirty()
         for card in self.cards:
-            if isinstance(card.model, FanModel | MapModel):
+            if isinstance(card.model, FanModel | MapModel | LogModel):
                 card.body.refresh_if_dirty()  # type: ignore[union-attr]
                 if card.model.status == TRAINING:
                     card.refresh_headline()

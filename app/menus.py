@@ -77,6 +77,13 @@ def build_menus(w: MainWindow) -> None:
             lambda: w.browse_presets("map"),
             "A map from a preset: batch size x threshold x seed, its windows and verdict",
         ),
+        action(
+            "add_log_action",
+            "Add &log...",
+            "Ctrl+Shift+L",
+            w.add_log,
+            "Your own run's log of gradient norms: every rule replayed on it, thresholds advised",
+        ),
         action("rename_action", "Re&name entry...", "F2", w.rename_selected, "Retitle the entry"),
         action(
             "move_up_action",
@@ -191,6 +198,7 @@ def build_menus(w: MainWindow) -> None:
         w.add_note_action,
         w.add_fan_action,
         w.add_map_action,
+        w.add_log_action,
         None,
         present,
     ):

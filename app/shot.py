@@ -70,7 +70,7 @@ def shot(
                 time.sleep(0.02)
         out.parent.mkdir(parents=True, exist_ok=True)
         saved = target.grab().save(str(out))
-        left = sum(e.status == "training" for e in study.trained_entries)
+        left = sum(e.status == "training" for e in study.workable)
     finally:
         window.shut_down()
         window.close()
@@ -81,5 +81,5 @@ def shot(
     still = f"; {left} still training when the picture was taken" if left else ""
     return (
         f"wrote {out} ({size[0]}x{size[1]}, {len(trained)} entries trained, "
-        f"{len(study.trained_entries) - len(trained)} from the cache{still})"
+        f"{len(study.workable) - len(trained)} from the cache{still})"
     )

@@ -6,14 +6,16 @@ from __future__ import annotations
 from PySide6 import QtWidgets
 
 from app.fan_view import FanView
+from app.log_view import LogView
 from app.map_view import MapView
 from app.note_view import Commit, NoteView
 from core.entry_model import EntryModel, NoteModel
 from core.fan_model import FanModel
+from core.log_model import LogModel
 from core.map_model import MapModel
 
-EntryView = NoteView | FanView | MapView
-TrainedView = FanView | MapView
+EntryView = NoteView | FanView | MapView | LogView
+WorkedView = FanView | MapView | LogView
 
 
 def make_view(
@@ -30,4 +32,6 @@ def make_view(
         return FanView(model, parent=parent)
     if isinstance(model, MapModel):
         return MapView(model, parent=parent)
+    if isinstance(model, LogModel):
+        return LogView(model, parent=parent)
     raise TypeError(f"no view for {type(model).__name__}")

@@ -63,15 +63,11 @@ class EntryModel(Protocol):
     def set_title(self, title: str) -> None: ...
 
 
-class TrainedEntry(EntryModel, Protocol):
-    """An entry whose results come from training: a fan or a map."""
+class WorkedEntry(EntryModel, Protocol):
+    """An entry whose results take work in a worker: a fan, a map or a log."""
 
-    scenario: Scenario
     status: str
-    results_hash: str
     run_id: int
-
-    def set_scenario(self, scenario: Scenario) -> None: ...
 
     @property
     def edited(self) -> bool: ...
@@ -87,6 +83,15 @@ class TrainedEntry(EntryModel, Protocol):
     def fail(self, run_id: int, message: str) -> None: ...
 
     def state_text(self) -> str: ...
+
+
+class TrainedEntry(WorkedEntry, Protocol):
+    """An entry whose results come from training a scenario: a fan or a map."""
+
+    scenario: Scenario
+    results_hash: str
+
+    def set_scenario(self, scenario: Scenario) -> None: ...
 
 
 def state_words(status: str, edited: bool, error: str = "") -> str:

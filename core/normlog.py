@@ -293,7 +293,7 @@ def _parse_csv(source: _CsvSource, columns: LogColumns | None, member: int | Non
     )
     if member is not None and not metrics:
         raise GradfenceInputError(
-            f"{name} is not a metrics.csv of `gradfence run`; the member option applies to "
+            f"{name} is not a metrics.csv of `gradfence train`; the member option applies to "
             "those only."
         )
     if not source.has_rows_after(header_index):
@@ -454,7 +454,7 @@ def parse_json_lines(
     """Read a JSON Lines log: one object per line, keys as CSV column names."""
     if member is not None:
         raise GradfenceInputError(
-            f"{name} is not a metrics.csv of `gradfence run`; the member option applies to "
+            f"{name} is not a metrics.csv of `gradfence train`; the member option applies to "
             "those only."
         )
     numbered = [(i + 1, line) for i, line in enumerate(text.lstrip("\ufeff").splitlines())]

@@ -14,13 +14,14 @@ import time
 from collections.abc import Sequence
 from typing import Any, Protocol
 
-from core.entry_model import TRAINING, TrainedEntry
+from core.entry_model import TRAINING, WorkedEntry
 from core.fan import fan_factors, fan_members
 from core.fan_model import FanModel
+from core.log_model import LogModel
 from core.map_model import MapModel
 from core.scenario import dumps_scenario
 from core.study import Study, StudyEvent
-from core.work import CHUNK, FAN, PROFILE, Handler, Job
+from core.work import CHUNK, FAN, LOG, PROFILE, Handler, Job
 
 NEAR = 2  # fan thresholds on each side of the slider's that train first
 
@@ -69,7 +70,7 @@ class Runner:
     def __init__(self, study: Study, pool: Pool) -> None:
         self.study, self.pool = study, pool
         self._started: dict[int, float] = {}  # id(entry) -> time.monotonic() it began
-        self._batch: list[TrainedEntry] = []  # what the progress figure is over
+        self._batch: list[WorkedEntry] = []  # what the progress figure is over
         study.subscribe(self._on_study_event)
 
     def close(self) -> None:
@@ -78,22 +79,26 @@ class Runner:
 
     # -- training -----------------------------------------------------------------------------
 
-    def train(self, entry: TrainedEntry, focus: float | None = None) -> None:
-        """Start training `entry` unless it is training already."""
+    def train(self, entry: WorkedEntry, focus: float | None = None) -> None:
+        """Start training `entry` (replaying a log) unless it is doing so already."""
         if entry.status == TRAINING:
             return
         run_id = self.pool.new_run_id()
-        text = dumps_scenario(entry.scenario)
         handler = self._handler_for(entry)
         if isinstance(entry, FanModel):
+            text = dumps_scenario(entry.scenario)
             entry.begin(run_id)
             for batch, columns in fan_jobs(entry, focus):
                 self.pool.submit(Job(run_id, FAN, text, batch, columns), handler)
         elif isinstance(entry, MapModel):
+            text = dumps_scenario(entry.scenario)
             chunks = entry.begin(run_id)
             self.pool.submit(Job(run_id, PROFILE, text), handler)
             for chunk in chunks:
                 self.pool.submit(Job(run_id, CHUNK, text, chunk.batch_size, chunk=chunk), handler)
+        elif isinstance(entry, LogModel):
+            entry.begin(run_id)
+            self.pool.submit(Job(run_id, LOG, "", log=entry.source), handler)
         else:
             raise TypeError(f"cannot train {type(entry).__name__}")
         if not self.training():
@@ -101,36 +106,36 @@ class Runner:
         self._batch = [e for e in self._batch if e is not entry] + [entry]
         self._started[id(entry)] = time.monotonic()
 
-    def train_all(self, entries: Sequence[TrainedEntry] | None = None) -> list[TrainedEntry]:
+    def train_all(self, entries: Sequence[WorkedEntry] | None = None) -> list[WorkedEntry]:
         """Train every entry given (default: every entry of the study that trains)."""
-        todo = list(entries if entries is not None else self.study.trained_entries)
+        todo = list(entries if entries is not None else self.study.workable)
         for entry in todo:
             self.train(entry)
         return todo
 
-    def train_pending(self) -> list[TrainedEntry]:
+    def train_pending(self) -> list[WorkedEntry]:
         """Train the entries without current results; returns them."""
         return self.train_all(self.study.pending())
 
-    def stop(self, entry: TrainedEntry) -> None:
+    def stop(self, entry: WorkedEntry) -> None:
         if entry.status == TRAINING:
             self.pool.stop(entry.run_id)
             entry.stop()
 
     def stop_all(self) -> None:
-        for entry in self.study.trained_entries:
+        for entry in self.study.workable:
             self.stop(entry)
         for entry in self._batch:
             self.stop(entry)
 
-    def training(self) -> list[TrainedEntry]:
+    def training(self) -> list[WorkedEntry]:
         return [e for e in self._batch if e.status == TRAINING]
 
     @property
     def busy(self) -> bool:
         return bool(self.training())
 
-    def _handler_for(self, entry: TrainedEntry) -> Handler:
+    def _handler_for(self, entry: WorkedEntry) -> Handler:
         def handle(kind: str, run_id: int, batch: int, payload: Any) -> None:
             if kind == "error":
                 entry.fail(run_id, str(payload))
@@ -145,6 +150,9 @@ class Runner:
                     entry.add_rows(run_id, payload)
                 elif kind == "profile":
                     entry.add_profile(run_id, payload)
+            elif isinstance(entry, LogModel) and kind == "advice":
+                advice, source = payload
+                entry.set_advice(run_id, advice, source)
 
         return handle
 
@@ -158,7 +166,7 @@ class Runner:
             self._batch
         )
 
-    def seconds_left(self, entry: TrainedEntry) -> float | None:
+    def seconds_left(self, entry: WorkedEntry) -> float | None:
         started = self._started.get(id(entry))
         share = entry.progress()
         if started is None or entry.status != TRAINING or share < 0.02:
@@ -181,5 +189,5 @@ class Runner:
 
     def _on_study_event(self, event: StudyEvent) -> None:
         entry = event.entry
-        if event.what == "removed" and isinstance(entry, FanModel | MapModel):
+        if event.what == "removed" and isinstance(entry, FanModel | MapModel | LogModel):
             self.stop(entry)

@@ -14,8 +14,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from core import cache
-from core.entry_model import TRAINING, EntryModel, NoteModel, TrainedEntry
+from core.entry_model import TRAINING, EntryModel, NoteModel, TrainedEntry, WorkedEntry
 from core.fan_model import FanModel
+from core.log_model import LogModel
 from core.map_model import MapModel
 from core.study_file import EntryRecord, StudyFile, dumps_study, load_study, save_study
 
@@ -43,6 +44,10 @@ def entry_from_record(record: EntryRecord) -> EntryModel:
     """A fresh model for one entry of a file."""
     if record.kind == "note":
         return NoteModel(record.title, record.text, origin=record)
+    if record.kind == "log":
+        if record.log is None:
+            raise ValueError(f"the log entry {record.title!r} has no log")
+        return LogModel(record.title, record.log, origin=record)
     if record.scenario is None:
         raise ValueError(f"the {record.kind} entry {record.title!r} has no scenario")
     if record.kind == "fan":
@@ -56,6 +61,8 @@ def record_of(entry: EntryModel) -> EntryRecord:
     """An entry as its file would hold it now."""
     if isinstance(entry, NoteModel):
         return EntryRecord("note", entry.title, text=entry.text)
+    if isinstance(entry, LogModel):
+        return EntryRecord("log", entry.title, log=entry.source)
     origin: EntryRecord | None = entry.origin
     if isinstance(entry, FanModel | MapModel):
         if origin is not None and origin.kind == entry.kind:
@@ -171,7 +178,13 @@ class Study:
 
     @property
     def trained_entries(self) -> list[TrainedEntry]:
+        """The fans and maps."""
         return [e for e in self._entries if isinstance(e, FanModel | MapModel)]
+
+    @property
+    def workable(self) -> list[WorkedEntry]:
+        """Every entry whose results take work: fans, maps and logs."""
+        return [e for e in self._entries if isinstance(e, FanModel | MapModel | LogModel)]
 
     def insert(self, index: int, entry: EntryModel) -> None:
         index = max(0, min(index, len(self._entries)))
@@ -205,11 +218,9 @@ class Study:
             self._emit(StudyEvent("title"))
             self._update_modified()
 
-    def pending(self) -> list[TrainedEntry]:
-        """The entries without finished results of their current scenario."""
-        return [
-            e for e in self.trained_entries if not e.has_current_results() and e.status != TRAINING
-        ]
+    def pending(self) -> list[WorkedEntry]:
+        """The entries without finished results of what they hold now."""
+        return [e for e in self.workable if not e.has_current_results() and e.status != TRAINING]
 
     # -- listening ----------------------------------------------------------------------------
 

@@ -1,4 +1,4 @@
-"""Study files (`*.study.toml`): a title and ordered entries (notes, fans and maps).
+"""Study files (`*.study.toml`): a title and ordered entries (notes, fans, maps and logs).
 
 A fan or map entry names a preset (relative to the study) and/or carries an inline
 [entry.scenario] table, plus [entry.set] dotted overrides. Entries are validated as strictly as
@@ -24,6 +24,7 @@ from typing import Any
 from core.errors import GradfenceInputError
 from core.fields import describe
 from core.fileio import write_text_atomic
+from core.log_entry import LogSource, log_entry_table, parse_log_entry
 from core.scenario import (
     OLD_SCHEMAS,
     SCHEMA,
@@ -36,25 +37,27 @@ from core.scenario import (
 
 STUDY_SUFFIX = ".study.toml"
 OLD_SUFFIX = ".notebook.toml"  # schema 1
-ENTRY_KINDS = ("note", "fan", "map")
+ENTRY_KINDS = ("note", "fan", "map", "log")
 SCENARIO_KINDS = ("fan", "map")
 OLD_KINDS = {"run": "fan", "sweep": "map"}  # schema 1
 ENTRY_KEYS = {
     "note": ("kind", "title", "text"),
     "fan": ("kind", "title", "preset", "scenario", "set"),
     "map": ("kind", "title", "preset", "scenario", "set"),
+    "log": ("kind", "title", "log", "member", "columns", "advice"),
 }
 
 
 @dataclass(frozen=True)
 class EntryRecord:
-    """One entry as a file holds it. Equality is what a reader sees: kind, title, note text
-    and scenario."""
+    """One entry as a file holds it. Equality is what a reader sees: kind, title, note text,
+    scenario, and a log's source."""
 
     kind: str
     title: str
     text: str = ""  # notes: Markdown
     scenario: Scenario | None = None  # fans and maps: resolved
+    log: LogSource | None = None  # logs: which file, read and advised how
     preset: str | None = field(default=None, compare=False)  # as written in the file
     # How the entry was written, to write it back the same way while its scenario is unedited:
     raw: Mapping[str, Any] | None = field(default=None, compare=False, repr=False)
@@ -187,6 +190,8 @@ def _parse_entry(item: Any, index: int, path: Path, source: str, notices: list[s
         if not isinstance(text, str):
             raise GradfenceInputError(f"{where}: text must be a string, not {describe(text)}.")
         return EntryRecord(kind, title, text=text)
+    if kind == "log":
+        return EntryRecord(kind, title, log=parse_log_entry(item, path.parent, where))
     raw: dict[str, Any] = {}
     preset = item.get("preset")
     preset_path = None
@@ -245,6 +250,10 @@ def entry_table(entry: EntryRecord, folder: Path) -> dict[str, Any]:
     """The [[entry]] table of `entry` in a study saved in `folder`."""
     if entry.kind == "note":
         return {"kind": "note", "title": entry.title, "text": entry.text}
+    if entry.kind == "log":
+        if entry.log is None:
+            raise ValueError("a log entry needs its log")
+        return {"kind": "log", "title": entry.title, **log_entry_table(entry.log, folder)}
     if entry.scenario is None:
         raise ValueError(f"a {entry.kind} entry needs a scenario")
     if entry.raw is not None and entry.scenario == entry.origin:

@@ -1,8 +1,9 @@
 """The work a worker does for a study, as plain data and one function, with no Qt.
 
-A `Job` is one stack of a fan (some of its members at one batch size), one chunk of a map, or a
-map's norm profile. `perform` does it and reports through `send(kind, payload)`: "records"
-(the columns and a batch of StepRecords, about every 30 ms), "rows", "profile", then "done",
+A `Job` is one stack of a fan (some of its members at one batch size), one chunk of a map,
+a map's norm profile, or a log entry's replay. `perform` does it and reports through
+`send(kind, payload)`: "records" (the columns and a batch of StepRecords, about every 30 ms),
+"rows", "profile", "advice", then "done",
 "stopped" or "error" (a traceback). `InlinePool` performs jobs in the calling process, for
 scripts and for tests that need no worker processes.
 """
@@ -18,7 +19,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
-FAN, CHUNK, PROFILE = "fan", "chunk", "profile"
+FAN, CHUNK, PROFILE, LOG = "fan", "chunk", "profile", "log"
 SEND_EVERY = 0.03  # seconds between record batches: about the rate the window redraws
 
 Send = Callable[[str, Any], None]
@@ -33,6 +34,7 @@ class Job:
     batch_size: int = 0
     columns: tuple[int, ...] = ()  # a fan's members (indices into fan_members) to train
     chunk: Any = None  # core.maps.Chunk, for CHUNK
+    log: Any = None  # core.log_entry.LogSource, for LOG
     job_id: int = 0  # set by the pool
     retried: bool = False  # set by a pool that gave it to a second worker
 
@@ -51,10 +53,27 @@ def perform(job: Job, send: Send, stop_requested: Callable[[], bool]) -> None:
 
             send("rows", run_chunk(job.scenario_toml, job.chunk))
             send("done", job.columns)
+        elif job.kind == LOG:
+            send("advice", (advise_source(job.log), job.log))
+            send("done", job.columns)
         else:
             _train_fan_stack(job, send, stop_requested)
     except Exception:  # a failing job shows in its entry; the worker lives on
         send("error", traceback.format_exc())
+
+
+def advise_source(source: Any) -> Any:
+    """The advice on a log entry's log (core.advice.Advice)."""
+    from core.advice import advise
+    from core.normlog import load_log
+
+    log = load_log(source.path, source.columns, source.member)
+    return advise(
+        log,
+        threshold=source.threshold,
+        to_batch=source.to_batch,
+        max_clip_share=source.max_clip_share,
+    )
 
 
 def _train_fan_stack(job: Job, send: Send, stop_requested: Callable[[], bool]) -> None:
