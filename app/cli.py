@@ -84,7 +84,22 @@ def build_parser() -> argparse.ArgumentParser:
         "--jobs",
         type=int,
         default=None,
-        help="processes training at once (default and at most: the cores the memory allows)",
+        help="processes training at once (default and at most: the cores the memory allows); "
+        "does not apply with --cluster",
+    )
+    mapping.add_argument(
+        "--cluster",
+        metavar="ADDRESS",
+        default=None,
+        help="a Dask scheduler address, e.g. tcp://host:8786; needs pip install "
+        "'gradfence[cluster]'; the workers there replace --jobs",
+    )
+    mapping.add_argument(
+        "--cluster-timeout",
+        type=float,
+        default=10.0,
+        metavar="SECONDS",
+        help="how long to wait for the scheduler to answer and for its first worker (default 10)",
     )
     mapping.add_argument(
         "--resume",

@@ -79,6 +79,15 @@ def command_map(args: argparse.Namespace) -> int:
 
     if args.jobs is not None and args.jobs < 1:
         raise GradfenceInputError(f"--jobs = {args.jobs} must be at least 1.")
+    if args.jobs is not None and args.cluster is not None:
+        raise GradfenceInputError(
+            "--jobs does not apply with --cluster: the workers' --nthreads and --nworkers set "
+            "how many chunks train at once; drop --jobs."
+        )
+    if not args.cluster_timeout > 0:
+        raise GradfenceInputError(
+            f"--cluster-timeout = {args.cluster_timeout:g} must be greater than 0."
+        )
     if args.resume and args.fresh:
         raise GradfenceInputError("--resume and --fresh contradict each other; choose one.")
     scenario = load_preset(args.preset, args.overrides)
@@ -102,6 +111,9 @@ def command_map(args: argparse.Namespace) -> int:
             resume=args.resume,
             fresh=args.fresh,
             on_progress=lambda p: progress.update(p.members_done),
+            warn=lambda line: print(f"warning: {line}", file=sys.stderr),
+            cluster=args.cluster,
+            cluster_timeout=args.cluster_timeout,
         )
     except KeyboardInterrupt:
         progress.close()

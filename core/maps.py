@@ -154,13 +154,16 @@ def run_map(
     fresh: bool = False,
     on_progress: Callable[[MapProgress], None] | None = None,
     warn: Callable[[str], None] | None = None,
+    cluster: str | None = None,
+    cluster_timeout: float = 10.0,
 ) -> list[dict[str, Any]]:
     """Train every chunk not already in `out/map.csv`; returns the full table, sorted.
 
     Rows are appended to map.csv as chunks finish, so an interrupted map keeps its finished
     members; at the end the table is rewritten in grid order. See core/map_folder.py for what
     the folder may hold and when it is refused. `jobs` is capped by the cores and by what the
-    free memory holds.
+    free memory holds. With `cluster`, a Dask scheduler's address, the chunks train on its
+    workers instead (core.cluster) and `jobs` does not apply.
     """
     from core.map_folder import open_folder
 
@@ -200,7 +203,13 @@ def run_map(
         text = dumps_scenario(scenario)
         rows = list(done_rows)
         ordered = sorted(todo, key=lambda c: -c.cost)
-        for chunk_rows in _execute(text, ordered, jobs):
+        if cluster is None:
+            finishing = _execute(text, ordered, jobs)
+        else:
+            from core.cluster import execute_on_cluster  # dask.distributed: an optional extra
+
+            finishing = execute_on_cluster(cluster, text, ordered, cluster_timeout)
+        for chunk_rows in finishing:
             rows += chunk_rows
             folder.append(table_csv(chunk_rows, header=False))
             progress.done += 1
