@@ -10,17 +10,14 @@ from __future__ import annotations
 import os
 import time
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 from PySide6 import QtCore, QtWidgets
 
+from app.host import Host
 from core.errors import GradfenceInputError
 from core.study import Study
 from core.study_file import loads_study
 from core.userdata import Recovery, clear_recovery, find_recovery, write_recovery
-
-if TYPE_CHECKING:
-    from app.main_window import MainWindow
 
 AUTOSAVE_VARIABLE = "GRADFENCE_AUTOSAVE_SECONDS"
 AUTOSAVE_SECONDS = 30.0
@@ -34,9 +31,9 @@ def autosave_seconds() -> float:
 
 
 class Autosave(QtCore.QObject):
-    def __init__(self, window: MainWindow) -> None:
-        super().__init__(window)
-        self.window = window
+    def __init__(self, host: Host) -> None:
+        super().__init__(host.widget())
+        self.host = host
         self._last = ""
         self.timer = QtCore.QTimer(self)
         self.timer.timeout.connect(self.save_copy)
@@ -48,7 +45,7 @@ class Autosave(QtCore.QObject):
 
     def save_copy(self) -> Path | None:
         """Copy unsaved edits to the recovery file (only when they changed since last time)."""
-        study = self.window.study
+        study = self.host.study
         if not study.modified:
             return None
         try:
@@ -60,7 +57,7 @@ class Autosave(QtCore.QObject):
         try:
             written = write_recovery(study.path, text)
         except OSError as exc:
-            self.window.show_message(f"Autosave failed: {exc}")
+            self.host.show_message(f"Autosave failed: {exc}")
             return None
         self._last = text
         return written
@@ -68,7 +65,7 @@ class Autosave(QtCore.QObject):
     def offer(self, include_untitled: bool = False) -> bool:
         """Offer the edits an earlier session left unsaved (with `include_untitled`, those of a
         study that was never saved, too)."""
-        path = self.window.study.path
+        path = self.host.study.path
         slots: list[Path | None] = [path]
         if include_untitled and path is not None:
             slots.append(None)
@@ -83,7 +80,7 @@ class Autosave(QtCore.QObject):
             try:
                 restored = loads_study(found.text, where, source="the recovery copy")
             except GradfenceInputError as exc:
-                QtWidgets.QMessageBox.warning(self.window, "Cannot restore", str(exc))
+                QtWidgets.QMessageBox.warning(self.host.widget(), "Cannot restore", str(exc))
                 continue
             study = Study.from_file(restored, path=slot)
             on_disk = ""
@@ -93,7 +90,7 @@ class Autosave(QtCore.QObject):
                 except GradfenceInputError:
                     on_disk = ""
             study.mark_unsaved(on_disk)
-            self.window.set_study(study)
+            self.host.set_study(study)
             return True
         return False
 
@@ -101,7 +98,7 @@ class Autosave(QtCore.QObject):
         when = time.strftime("%Y-%m-%d %H:%M", time.localtime(found.saved_at))
         name = found.study.name if found.study else "a study never saved"
         answer = QtWidgets.QMessageBox.question(
-            self.window,
+            self.host.widget(),
             "Restore unsaved changes?",
             f"Gradfence ended without saving the changes to {name} (autosaved {when}). "
             "Restore them?",

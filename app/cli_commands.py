@@ -75,7 +75,8 @@ def command_map(args: argparse.Namespace) -> int:
 
     from core.analysis import analyse, sentence, window_line, windows_json
     from core.fileio import write_text_atomic
-    from core.maps import plan, run_map
+    from core.map_run import run_map
+    from core.maps import plan
 
     if args.jobs is not None and args.jobs < 1:
         raise GradfenceInputError(f"--jobs = {args.jobs} must be at least 1.")

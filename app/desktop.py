@@ -19,8 +19,6 @@ from core.study import Study
 from core.userdata import add_recent
 
 if TYPE_CHECKING:
-    from PySide6 import QtWidgets
-
     from app.main_window import MainWindow
 
 DEMO_STUDY = "demo.study.toml"
@@ -28,16 +26,6 @@ DEMO_STUDY = "demo.study.toml"
 
 def demo_path() -> Path:
     return shipped_dir() / DEMO_STUDY
-
-
-def application() -> QtWidgets.QApplication:
-    """The one QApplication of this process (made on first use)."""
-    from PySide6 import QtWidgets
-
-    app = QtWidgets.QApplication.instance()
-    if isinstance(app, QtWidgets.QApplication):
-        return app
-    return QtWidgets.QApplication(sys.argv[:1])
 
 
 def has_display() -> bool:
@@ -60,6 +48,8 @@ def launch(path: Path | None = None) -> int:
             "FILE.png` pictures a study and `gradfence handout STUDY --out FILE.html` writes it "
             "as a page."
         )
+    from app.qt_app import application
+
     app = application()
     window = open_window(study)
     window.pool.start()  # workers import torch in the background; nothing trains until asked

@@ -9,33 +9,14 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
-from app.axes import LogAxis, PlainAxis, tick_text
-from app.colors import CLEAN_COLOR, FADED_ALPHA, LINE_STYLES, OUTLIER_COLOR, method_color
+from app.axes import tick_text
+from app.colors import method_color
 from app.export import export_menu
+from app.fan_plots import FanPlots
 from app.fence import FenceView
 from core.fan import FAN_SIZE, fan_factors, member_for
 from core.fan_model import FanModel, StackData, clip_regime
-from core.methods import BATCH_NORM, EXAMPLE_NORM
 from core.scenario import ClipConfig
-
-pg.setConfigOptions(background="w", foreground="k", antialias=False)
-
-# key, title, left axis label, log axis
-PLOTS = (
-    ("loss", "clean validation loss", "loss", True),
-    ("norms", "batch-mean gradient norm", "L2 norm", True),
-    ("clipped", "clipped share", "share of what each method clips", False),
-    ("share", "outliers' share of the update", "share (0 to 1)", False),
-    ("pass", "outlier pass-through", "per step with outliers (0 to 1)", False),
-)
-MARKERS = ("o", "t", "s", "d", "+", "x")
-
-
-def _pen(color: str, style: QtCore.Qt.PenStyle, faded: bool = False, width: float = 2) -> object:
-    qcolor = pg.mkColor(color)
-    if faded:
-        qcolor.setAlpha(FADED_ALPHA)
-    return pg.mkPen(qcolor, width=width, style=style)
 
 
 class FanView(QtWidgets.QFrame):
@@ -109,43 +90,10 @@ class FanView(QtWidgets.QFrame):
         self.hover_label.setStyleSheet("color: #5C5C5C")
         layout.addWidget(self.hover_label)
 
-        self.canvas = pg.GraphicsLayoutWidget()
-        self.canvas.setMinimumHeight(760)
+        self.canvas = FanPlots()
         layout.addWidget(self.canvas, 1)
-        self.legend = pg.LegendItem(colCount=3, labelTextSize="8pt", verSpacing=-6)
-        self.plots: dict[str, pg.PlotItem] = {}
-        for key, title, unit, log in PLOTS:
-            axes = {"left": LogAxis("left") if log else PlainAxis("left")}
-            axes["bottom"] = PlainAxis("bottom")
-            plot = pg.PlotItem(title=title, axisItems=axes)
-            plot.setLabel("bottom", "step")
-            plot.setLabel("left", unit)
-            plot.setClipToView(True)
-            plot.setDownsampling(mode="peak", auto=True)
-            if log:
-                plot.setLogMode(y=True)
-            else:
-                plot.setYRange(0.0, 1.0, padding=0.04)
-                plot.getAxis("left").setTickSpacing(0.25, 0.25)
-            self.plots[key] = plot
-        hist = pg.PlotItem(
-            title="per-example gradient norms",
-            axisItems={"bottom": PlainAxis("bottom"), "left": PlainAxis("left")},
-        )
-        hist.setLabel("bottom", "log10 of the norm, latest step")
-        hist.setLabel("left", "examples")
-        self.plots["hist"] = hist
-        self.columns = 0
-        self.use_columns(2)
-        self.hist_clean, self.hist_outlier = (
-            hist.plot([0, 1], [0], stepMode="center", fillLevel=0, brush=c + "99", pen=c)
-            for c in (CLEAN_COLOR, OUTLIER_COLOR)
-        )
-        self.hist_lines: dict[str, pg.InfiniteLine] = {}
 
         self.export_button.setMenu(export_menu(self, self.canvas, self.model))
-        self.curves: dict[tuple[str, str], pg.PlotDataItem] = {}
-        self.faded: dict[tuple[str, str], pg.PlotDataItem] = {}
         self._build_curves()
 
         self.train_button.clicked.connect(lambda: self.train_requested.emit(self, self.factor))
@@ -164,20 +112,23 @@ class FanView(QtWidgets.QFrame):
 
     def use_columns(self, columns: int) -> None:
         """Lay the plots out in `columns` columns (2 in a study, 3 on a wide slide)."""
-        if columns == self.columns:
-            return
-        ci = self.canvas.ci
-        items = [self.plots[key] for key, *_ in PLOTS] + [self.plots["hist"]]
-        if self.columns:
-            for item in [self.legend, *items]:
-                ci.removeItem(item)
-        ci.addItem(self.legend, row=0, col=0, colspan=columns)
-        ci.layout.setRowMaximumHeight(0, 70)
-        for i, item in enumerate(items):
-            ci.addItem(item, row=1 + i // columns, col=i % columns)
-        for col in range(columns):
-            ci.layout.setColumnStretchFactor(col, 1)
-        self.columns = columns
+        self.canvas.use_columns(columns)
+
+    @property
+    def plots(self) -> dict[str, pg.PlotItem]:
+        return self.canvas.plots
+
+    @property
+    def curves(self) -> dict[tuple[str, str], pg.PlotDataItem]:
+        return self.canvas.curves
+
+    @property
+    def faded(self) -> dict[tuple[str, str], pg.PlotDataItem]:
+        return self.canvas.faded
+
+    @property
+    def hist_clean(self) -> pg.PlotDataItem:
+        return self.canvas.hist_clean
 
     # -- model -> view -----------------------------------------------------------------------
 
@@ -224,66 +175,19 @@ class FanView(QtWidgets.QFrame):
         return out
 
     def _build_curves(self) -> None:
-        for key, *_ in PLOTS:
-            self.plots[key].clear()
-        for line in self.hist_lines.values():
-            self.plots["hist"].removeItem(line)
-        self.legend.clear()
-        self.curves, self.faded, self.hist_lines = {}, {}, {}
+        self.canvas.build(self._labels())
         for check in self.method_checks.values():
             self.methods_row.removeWidget(check)
             check.deleteLater()
         self.method_checks = {}
-        solid, dash = QtCore.Qt.PenStyle.SolidLine, QtCore.Qt.PenStyle.DashLine
-        for index, (clip, occurrence) in enumerate(self._labels()):
+        for clip, _ in self._labels():
             label, color = clip.display_name, method_color(clip.method)
-            style = LINE_STYLES[occurrence % len(LINE_STYLES)]
-            counts = clip.spec.counts if clip.method != "none" else ""
-            for faded, target in ((True, self.faded), (False, self.curves)):
-                target[(label, "loss")] = self.plots["loss"].plot(pen=_pen(color, style, faded))
-                target[(label, "pre")] = self.plots["norms"].plot(pen=_pen(color, style, faded))
-                target[(label, "post")] = self.plots["norms"].plot(pen=_pen(color, dash, faded))
-                target[(label, "clipped")] = self.plots["clipped"].plot(
-                    pen=_pen(color, style, faded)
-                )
-                target[(label, "share")] = self.plots["share"].plot(
-                    pen=_pen(color, style, faded), connect="finite"
-                )
-                brush = pg.mkBrush(color + ("46" if faded else "C8"))
-                target[(label, "pass")] = self.plots["pass"].plot(
-                    pen=None,
-                    symbol=MARKERS[index % len(MARKERS)],
-                    symbolSize=6,
-                    symbolBrush=brush,
-                    symbolPen=None,
-                )
-            if clip.spec.compares == BATCH_NORM:
-                dotted = QtCore.Qt.PenStyle.DotLine
-                self.curves[(label, "level")] = self.plots["norms"].plot(
-                    pen=_pen(color, dotted, width=1.5)
-                )
-            if clip.spec.compares == EXAMPLE_NORM:
-                line = pg.InfiniteLine(angle=90, pen=_pen(color, QtCore.Qt.PenStyle.DotLine))
-                self.plots["hist"].addItem(line)
-                self.hist_lines[label] = line
-            sample = pg.PlotDataItem(pen=_pen(color, style))
-            self.legend.addItem(sample, f"{label} ({counts})" if counts else label)
             check = QtWidgets.QCheckBox(label)
             check.setChecked(True)
             check.setStyleSheet(f"color: {color}")
-            check.toggled.connect(lambda on, name=label: self._on_method_toggled(name, on))
+            check.toggled.connect(lambda on, name=label: self.canvas.set_visible(name, on))
             self.methods_row.insertWidget(self.methods_row.count() - 1, check)
             self.method_checks[label] = check
-        black = "#000000"
-        for text, style in (
-            ("norm before clipping", solid),
-            ("after clipping", dash),
-            ("threshold", QtCore.Qt.PenStyle.DotLine),
-        ):
-            self.legend.addItem(pg.PlotDataItem(pen=_pen(black, style)), text)
-        self.legend.addItem(pg.PlotDataItem(pen=_pen(black, solid, faded=True)), "before the edit")
-        self.legend.addItem(self.hist_clean, "clean examples")
-        self.legend.addItem(self.hist_outlier, "outliers")
 
     def _fill_batches(self) -> None:
         current = self.batch_box.currentText()
@@ -354,14 +258,6 @@ class FanView(QtWidgets.QFrame):
         else:
             self._on_selection_changed()
 
-    def _on_method_toggled(self, label: str, visible: bool) -> None:
-        for curves in (self.curves, self.faded):
-            for (name, _), curve in curves.items():
-                if name == label:
-                    curve.setVisible(visible)
-        if label in self.hist_lines:
-            self.hist_lines[label].setVisible(visible)
-
     def mousePressEvent(self, event: object) -> None:
         self.selected.emit(self)
 
@@ -376,11 +272,16 @@ class FanView(QtWidgets.QFrame):
         lines = []
         for clip, _ in self._labels():
             label = clip.display_name
-            self._draw_member(self.curves, current, label)
-            self._draw_member(self.faded, earlier, label)
+            self.canvas.draw_member(False, current, label, self.factor)
+            self.canvas.draw_member(True, earlier, label, self.factor)
             if current is not None:
                 lines.append(self._readout_line(current, clip))
-        self._draw_histogram(current or earlier)
+        self.canvas.draw_histogram(
+            current or earlier,
+            [c for c, _ in self._labels()],
+            self.factor,
+            lambda label: self.method_checks[label].isChecked(),
+        )
         self.fence.update()
         head = f"Batch size {self.batch_size}, thresholds × {self.factor:.3g}"
         if current is None and earlier is not None:
@@ -388,36 +289,6 @@ class FanView(QtWidgets.QFrame):
         elif current is None:
             head += ": not trained yet"
         self.readout.setText(head + ("<br>" + "<br>".join(lines) if lines else ""))
-
-    def _draw_member(
-        self, curves: dict[tuple[str, str], pg.PlotDataItem], stack: StackData | None, label: str
-    ) -> None:
-        keys = ("loss", "pre", "post", "clipped", "share", "pass", "level")
-        if stack is None or not any(m.name == label for m in stack.members):
-            for key in keys:
-                if (label, key) in curves:
-                    curves[(label, key)].setData([], [])
-            return
-        i = member_for(stack.members, label, self.factor)
-        rows = slice(0, stack.rows(i))
-        x, v = stack.steps[rows], stack.values
-        series = {
-            "loss": v["val_loss"],
-            "pre": v["grad_norm_pre"],
-            "post": v["grad_norm_post"],
-            "clipped": v["clipped_share"],
-            "share": v["outlier_share"],
-            "level": v["clip_level"],
-        }
-        for key, values in series.items():
-            if (label, key) in curves:
-                y = values[rows, i]
-                if key == "level":
-                    y = np.where(np.isfinite(y), y, np.nan)
-                curves[(label, key)].setData(x, y, connect="finite")
-        passed = v["outlier_pass"][rows, i]
-        held = np.isfinite(passed)
-        curves[(label, "pass")].setData(x[held], passed[held])
 
     def _readout_line(self, stack: StackData, clip: ClipConfig) -> str:
         label = clip.display_name
@@ -455,36 +326,6 @@ class FanView(QtWidgets.QFrame):
         return (
             f"{name}{at}: {clip_regime(share, clip.spec.counts)}; outlier pass-through "
             f"{through}; {result}"
-        )
-
-    def _draw_histogram(self, stack: StackData | None) -> None:
-        clips = [c for c, _ in self._labels() if c.method != "none"]
-        empty = stack is None or stack.example_norms is None or stack.outlier is None or not clips
-        for item in (self.hist_clean, self.hist_outlier, *self.hist_lines.values()):
-            item.setVisible(not empty)
-        if empty or stack is None or stack.example_norms is None or stack.outlier is None:
-            return
-        clip = next((c for c in clips if c.spec.compares == EXAMPLE_NORM), clips[0])
-        i = member_for(stack.members, clip.display_name, self.factor)
-        norms, flags = stack.example_norms[i], stack.outlier[i]
-        finite = np.isfinite(norms) & (norms > 0)
-        logs = np.log10(norms[finite])
-        if logs.size == 0:
-            return
-        edges = np.linspace(logs.min() - 0.05, logs.max() + 0.05, 31)
-        clean, _ = np.histogram(logs[~flags[finite]], edges)
-        outlier, _ = np.histogram(logs[flags[finite]], edges)
-        self.hist_clean.setData(edges, clean)
-        self.hist_outlier.setData(edges, outlier)
-        for label, line in self.hist_lines.items():
-            j = member_for(stack.members, label, self.factor)
-            level = stack.values["clip_level"][max(stack.rows(j) - 1, 0), j]
-            shown = math.isfinite(level) and level > 0 and self.method_checks[label].isChecked()
-            line.setVisible(shown)
-            if shown:
-                line.setPos(math.log10(level))
-        self.plots["hist"].setLabel(
-            "bottom", f"log10 of the norm, latest step ({clip.display_name} member)"
         )
 
     def _on_mouse_moved(self, event: tuple[object]) -> None:

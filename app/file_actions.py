@@ -5,32 +5,37 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 from PySide6 import QtCore, QtWidgets
 
+from app.host import Host
+from core.entry_model import EntryModel
 from core.errors import GradfenceInputError
+from core.fan_model import FanModel
 from core.fileio import write_text_atomic
+from core.map_model import MapModel
+from core.presets import save_user_preset
 from core.study import UNTITLED, Study
 from core.study_file import OLD_SUFFIX, STUDY_SUFFIX, study_stem
 from core.userdata import add_recent, clear_recovery, recent_studies
-
-if TYPE_CHECKING:
-    from app.main_window import MainWindow
 
 STUDY_FILTER = f"Studies (*{STUDY_SUFFIX} *{OLD_SUFFIX})"
 Button = QtWidgets.QMessageBox.StandardButton
 
 
 class StudyFiles:
-    """Keeps the window's study on disk; replaces it through `window.set_study`."""
+    """Keeps the window's study on disk; replaces it through `host.set_study`."""
 
-    def __init__(self, window: MainWindow) -> None:
-        self.window = window
+    def __init__(self, host: Host) -> None:
+        self.host = host
+
+    @property
+    def window(self) -> QtWidgets.QWidget:
+        return self.host.widget()
 
     @property
     def study(self) -> Study:
-        return self.window.study
+        return self.host.study
 
     def folder(self) -> Path:
         return self.study.folder()
@@ -58,7 +63,7 @@ class StudyFiles:
 
     def new_study(self) -> None:
         if self.confirm_discard():
-            self.window.set_study(Study(UNTITLED))
+            self.host.set_study(Study(UNTITLED))
 
     def open_dialog(self) -> None:
         path, _ = QtWidgets.QFileDialog.getOpenFileName(
@@ -75,9 +80,9 @@ class StudyFiles:
         except GradfenceInputError as exc:
             QtWidgets.QMessageBox.warning(self.window, "Cannot open study", str(exc))
             return False
-        self.window.set_study(study)
+        self.host.set_study(study)
         add_recent(path)
-        self.window.autosave.offer()
+        self.host.offer_recovery()
         return True
 
     def fill_recent_menu(self, menu: QtWidgets.QMenu) -> None:
@@ -120,10 +125,9 @@ class StudyFiles:
         clear_recovery(before)
         clear_recovery(path)
         add_recent(path)
-        self.window.undo_stack.setClean()
-        self.window.autosave.forget()
+        self.host.study_saved()
         kept = f" (the older {before.name} is kept as it was)" if before and before != path else ""
-        self.window.show_message(f"Saved {path}{kept}")
+        self.host.show_message(f"Saved {path}{kept}")
         return True
 
     def export_handout(self, path: Path | None = None) -> bool:
@@ -139,7 +143,7 @@ class StudyFiles:
             if not name:
                 return False
             path = Path(name).with_suffix(".html")
-        runner = self.window.runner
+        runner = self.host.runner
         todo = runner.train_pending()
         if todo:
             dialog = QtWidgets.QProgressDialog(
@@ -162,5 +166,30 @@ class StudyFiles:
         except OSError as exc:
             QtWidgets.QMessageBox.warning(self.window, "Cannot write the handout", f"{path}: {exc}")
             return False
-        self.window.show_message(f"Wrote {path}")
+        self.host.show_message(f"Wrote {path}")
         return True
+
+    def save_as_preset(self, model: EntryModel | None) -> None:
+        """Keep a fan's or a map's scenario as one of the user's presets."""
+        if not isinstance(model, FanModel | MapModel):
+            QtWidgets.QMessageBox.information(self.window, "Save as preset", "Select a fan or map.")
+            return
+        name, ok = QtWidgets.QInputDialog.getText(
+            self.window, "Save as preset", "Preset name:", text=model.scenario.name
+        )
+        if not ok or not name.strip():
+            return
+        try:
+            try:
+                path = save_user_preset(model.scenario, name.strip())
+            except FileExistsError as exc:
+                answer = QtWidgets.QMessageBox.question(
+                    self.window, "Save as preset", f"{exc.args[0]} exists. Replace it?"
+                )
+                if answer != QtWidgets.QMessageBox.StandardButton.Yes:
+                    return
+                path = save_user_preset(model.scenario, name.strip(), overwrite=True)
+        except (GradfenceInputError, OSError) as exc:
+            QtWidgets.QMessageBox.warning(self.window, "Cannot save preset", str(exc))
+            return
+        self.host.show_message(f"Saved preset {path}")

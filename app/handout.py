@@ -293,7 +293,7 @@ def write_handout(
 ) -> tuple[int, list[str]]:
     """`gradfence handout`: train what is not cached, then write the HTML file. Returns the
     number of entries and the titles of those that failed."""
-    from app.desktop import application
+    from app.qt_app import application
     from core.pool import WorkerPool
     from core.runner import Runner
 

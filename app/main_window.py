@@ -19,19 +19,17 @@ from app import commands
 from app.autosave import Autosave
 from app.entry_card import EntryCard
 from app.file_actions import StudyFiles
-from app.log_form import LogForm
+from app.inspector import Inspector
+from app.menus import build_menus
 from app.presets_dialog import PresetBrowser
-from app.scenario_form import ScenarioForm
-from app.toml_editor import TomlEditor
 from app.views import EntryView, WorkedView, make_view
 from core.entry_model import TRAINING, EntryModel, NoteModel, TrainedEntry, WorkedEntry
-from core.errors import GradfenceInputError
 from core.fan_model import FanModel
 from core.log_entry import LogSource
 from core.log_model import LogModel
 from core.map_model import MapModel
 from core.pool import WorkerPool
-from core.presets import PresetInfo, save_user_preset
+from core.presets import PresetInfo
 from core.runner import Runner
 from core.scenario import Scenario
 from core.study import Study, StudyEvent
@@ -45,34 +43,6 @@ RETRAIN_MS = 800  # after an edit, the pause before an entry trains again by its
 
 
 class MainWindow(QtWidgets.QMainWindow):
-    # Made by app.menus.build_menus:
-    new_action: QtGui.QAction
-    open_action: QtGui.QAction
-    save_action: QtGui.QAction
-    save_as_action: QtGui.QAction
-    handout_action: QtGui.QAction
-    quit_action: QtGui.QAction
-    undo_action: QtGui.QAction
-    redo_action: QtGui.QAction
-    add_note_action: QtGui.QAction
-    add_fan_action: QtGui.QAction
-    add_map_action: QtGui.QAction
-    add_log_action: QtGui.QAction
-    rename_action: QtGui.QAction
-    move_up_action: QtGui.QAction
-    move_down_action: QtGui.QAction
-    collapse_action: QtGui.QAction
-    delete_action: QtGui.QAction
-    rename_study_action: QtGui.QAction
-    save_preset_action: QtGui.QAction
-    train_action: QtGui.QAction
-    train_all_action: QtGui.QAction
-    stop_action: QtGui.QAction
-    forget_action: QtGui.QAction
-    auto_train_action: QtGui.QAction
-    present_action: QtGui.QAction
-    recent_menu: QtWidgets.QMenu
-
     def __init__(self, study: Study, pool: WorkerPool | None = None) -> None:
         super().__init__()
         self.pool = pool or WorkerPool()
@@ -81,7 +51,6 @@ class MainWindow(QtWidgets.QMainWindow):
         self.cards: list[EntryCard] = []
         self.selected_card: EntryCard | None = None
         self.auto_train = True  # an edit retrains the entry after a short pause
-        self._inspector_pages: list[ScenarioForm | TomlEditor | LogForm] = []
         self._to_train: dict[int, WorkedEntry] = {}
         self.presentation: PresentationWindow | None = None
         self.undo_stack = QtGui.QUndoStack(self)
@@ -102,7 +71,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.outline = QtWidgets.QListWidget()
         self.outline.currentRowChanged.connect(self._on_outline_row_changed)
         self._dock("Outline", self.outline, QtCore.Qt.DockWidgetArea.LeftDockWidgetArea)
-        self.inspector = QtWidgets.QTabWidget()
+        self.inspector = Inspector(self.commit_scenario, self.commit_log_source)
         self.inspector_dock = self._dock(
             "Inspector", self.inspector, QtCore.Qt.DockWidgetArea.RightDockWidgetArea
         )
@@ -117,10 +86,47 @@ class MainWindow(QtWidgets.QMainWindow):
         self._retrain_timer.setSingleShot(True)
         self._retrain_timer.timeout.connect(self._on_retrain_due)
         self.autosave = Autosave(self)
-        from app.menus import build_menus
-
-        build_menus(self)
+        self.menu_actions = build_menus(
+            self, self.undo_stack, self._slots(), self.files.fill_recent_menu, self._set_auto
+        )
         self.set_study(study)
+
+    def _slots(self) -> dict[str, Any]:
+        """What each action of app.menus does."""
+        f, on_card = self.files, self.with_selected
+        return {
+            "new_study": f.new_study,
+            "open_study": f.open_dialog,
+            "save": f.save,
+            "save_as": f.save_as,
+            "export_handout": f.export_handout,
+            "quit": self.close,
+            "add_note": self.add_note,
+            "add_fan": lambda: self.browse_presets("fan"),
+            "add_map": lambda: self.browse_presets("map"),
+            "add_log": self.add_log,
+            "rename_entry": self.rename_selected,
+            "move_up": lambda: on_card(lambda c: self.move_card(c, -1)),
+            "move_down": lambda: on_card(lambda c: self.move_card(c, 1)),
+            "fold": lambda: on_card(lambda c: c.set_collapsed(not c.collapsed)),
+            "delete_entry": lambda: on_card(self.delete_card),
+            "rename_study": self.rename_study,
+            "save_preset": lambda: f.save_as_preset(self.selected_model()),
+            "train": self.train_selected,
+            "train_all": self.train_all,
+            "stop": lambda: self.runner.stop_all(),
+            "forget": self.forget_selected,
+            "present": self.present,
+        }
+
+    def _set_auto(self, on: bool) -> None:
+        self.auto_train = on
+
+    @property
+    def recent_menu(self) -> QtWidgets.QMenu:
+        menu = self.menu_actions["recent"].menu()
+        assert isinstance(menu, QtWidgets.QMenu)
+        return menu
 
     def _dock(
         self, title: str, widget: QtWidgets.QWidget, area: QtCore.Qt.DockWidgetArea
@@ -146,7 +152,7 @@ class MainWindow(QtWidgets.QMainWindow):
         for card in self.cards:
             self._drop_card(card)
         self.cards, self.selected_card = [], None
-        self._clear_inspector()
+        self.inspector.clear_pages()
         self.undo_stack.clear()
         self.autosave.forget()
         self.study = study
@@ -171,7 +177,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self.cards.remove(card)
             if self.selected_card is card:
                 self.selected_card = None
-                self._clear_inspector()
+                self.inspector.clear_pages()
                 if self.cards:
                     self.select_card(self.cards[min(event.index, len(self.cards) - 1)])
             self._drop_card(card)
@@ -248,6 +254,19 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def show_message(self, text: str, ms: int = 8000) -> None:
         self.statusBar().showMessage(text, ms)
+
+    def widget(self) -> QtWidgets.QWidget:
+        return self
+
+    def study_saved(self) -> None:
+        self.undo_stack.setClean()
+        self.autosave.forget()
+
+    def offer_recovery(self) -> bool:
+        return self.autosave.offer()
+
+    def selected_model(self) -> EntryModel | None:
+        return self.selected_card.model if self.selected_card is not None else None
 
     # -- edits (each an undo command) --------------------------------------------------------
 
@@ -342,30 +361,12 @@ class MainWindow(QtWidgets.QMainWindow):
         if ok and title.strip() and title.strip() != card.model.title:
             self.undo_stack.push(commands.Rename(card.model, title.strip()))
 
-    def save_selected_as_preset(self) -> None:
-        model = self.selected_card.model if self.selected_card else None
-        if not isinstance(model, FanModel | MapModel):
-            QtWidgets.QMessageBox.information(self, "Save as preset", "Select a fan or a map.")
-            return
-        name, ok = QtWidgets.QInputDialog.getText(
-            self, "Save as preset", "Preset name:", text=model.scenario.name
+    def rename_study(self) -> None:
+        title, ok = QtWidgets.QInputDialog.getText(
+            self, "Rename the study", "Title:", text=self.study.title
         )
-        if not ok or not name.strip():
-            return
-        try:
-            try:
-                path = save_user_preset(model.scenario, name.strip())
-            except FileExistsError as exc:
-                answer = QtWidgets.QMessageBox.question(
-                    self, "Save as preset", f"{exc.args[0]} exists. Replace it?"
-                )
-                if answer != QtWidgets.QMessageBox.StandardButton.Yes:
-                    return
-                path = save_user_preset(model.scenario, name.strip(), overwrite=True)
-        except (GradfenceInputError, OSError) as exc:
-            QtWidgets.QMessageBox.warning(self, "Cannot save preset", str(exc))
-            return
-        self.show_message(f"Saved preset {path}")
+        if ok and title.strip() and title.strip() != self.study.title:
+            self.undo_stack.push(commands.RenameStudy(self.study, title.strip()))
 
     # -- training ----------------------------------------------------------------------------
 
@@ -410,44 +411,18 @@ class MainWindow(QtWidgets.QMainWindow):
     # -- selection and inspector -------------------------------------------------------------
 
     def select_card(self, card: EntryCard) -> None:
-        if card is self.selected_card and (self._inspector_pages or card.kind == "note"):
+        if card is self.selected_card and self.inspector.model is card.model:
             return
         if self.selected_card in self.cards and self.selected_card is not None:
             self.selected_card.set_selected(False)
         self.selected_card = card
         card.set_selected(True)
-        self._clear_inspector()
         if card in self.cards:
             self.outline.blockSignals(True)
             self.outline.setCurrentRow(self.cards.index(card))
             self.outline.blockSignals(False)
-        model = card.model
-        if isinstance(model, FanModel | MapModel):
-            form = ScenarioForm(model, commit=self.commit_scenario)
-            editor = TomlEditor(model, commit=self.commit_scenario)
-            self._inspector_pages = [form, editor]
-            self.inspector.addTab(form, "Form")
-            self.inspector.addTab(editor, "TOML")
-        elif isinstance(model, LogModel):
-            log_form = LogForm(model, commit=self.commit_log_source)
-            self._inspector_pages = [log_form]
-            self.inspector.addTab(log_form, "Log")
-        else:
-            hint = QtWidgets.QLabel("A note: double-click it in the study to edit its Markdown.")
-            hint.setWordWrap(True)
-            hint.setAlignment(QtCore.Qt.AlignmentFlag.AlignTop)
-            self.inspector.addTab(hint, "Note")
-        self.inspector_dock.setWindowTitle(f"Inspector - {model.title}")
-
-    def _clear_inspector(self) -> None:
-        for page in self._inspector_pages:
-            page.detach()
-        self._inspector_pages = []
-        while self.inspector.count():
-            widget = self.inspector.widget(0)
-            self.inspector.removeTab(0)
-            if widget is not None:
-                widget.deleteLater()
+        self.inspector.show_entry(card.model)
+        self.inspector_dock.setWindowTitle(f"Inspector - {card.model.title}")
 
     def _on_outline_row_changed(self, row: int) -> None:
         if 0 <= row < len(self.cards):

@@ -1,214 +1,175 @@
-"""The window's menus and toolbar: every action with its shortcut and tip, in one place."""
+"""The window's menus and toolbar: every action with its shortcut and tip, in one table.
+
+`build_menus` makes the actions of the table, connects each to the slot of the same name, and
+lays them out in menus and the toolbar; it knows nothing of the window but its Qt base class.
+"""
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
 
 from PySide6 import QtGui, QtWidgets
 
-from app import commands
-
-if TYPE_CHECKING:
-    from app.main_window import MainWindow
+Keys = QtGui.QKeySequence.StandardKey
 
 
-def build_menus(w: MainWindow) -> None:
-    """Create the actions as attributes of `w` (`w.train_action` ...), its menus and toolbar."""
-    keys = QtGui.QKeySequence.StandardKey
+@dataclass(frozen=True)
+class Item:
+    name: str  # the slot's name, and the action's key in what build_menus returns
+    text: str
+    shortcut: str | QtGui.QKeySequence.StandardKey
+    tip: str
 
-    def action(name: str, text: str, shortcut: Any, slot: Any, tip: str) -> QtGui.QAction:
-        a = QtGui.QAction(text, w)
-        if shortcut:
-            a.setShortcut(QtGui.QKeySequence(shortcut))
-        a.setStatusTip(tip)
-        a.setToolTip(tip)
-        a.triggered.connect(lambda _=False: slot())
-        setattr(w, name, a)
-        return a
 
-    files = w.files
-    file_actions = [
-        action("new_action", "&New study", keys.New, files.new_study, "An empty study"),
-        action(
-            "open_action", "&Open study...", keys.Open, files.open_dialog, "Open a .study.toml file"
-        ),
-        None,
-        action("save_action", "&Save", keys.Save, files.save, "Save the study"),
-        action(
-            "save_as_action", "Save &as...", keys.SaveAs, files.save_as, "Save under another name"
-        ),
-        None,
-        action(
-            "handout_action",
+SEPARATOR = None
+MENUS: dict[str, list[Item | None]] = {
+    "&File": [
+        Item("new_study", "&New study", Keys.New, "An empty study"),
+        Item("open_study", "&Open study...", Keys.Open, "Open a .study.toml file"),
+        SEPARATOR,
+        Item("save", "&Save", Keys.Save, "Save the study"),
+        Item("save_as", "Save &as...", Keys.SaveAs, "Save the study under another name"),
+        SEPARATOR,
+        Item(
+            "export_handout",
             "Export &handout...",
             "",
-            files.export_handout,
             "Write the study as one self-contained HTML file (trains what is not trained)",
         ),
-        None,
-        action("quit_action", "&Quit", "Ctrl+Q", w.close, "Quit Gradfence"),
-    ]
-    w.undo_action = w.undo_stack.createUndoAction(w, "&Undo")
-    w.undo_action.setShortcut(QtGui.QKeySequence(keys.Undo))
-    w.redo_action = w.undo_stack.createRedoAction(w, "&Redo")
-    w.redo_action.setShortcut(QtGui.QKeySequence(keys.Redo))
-    edit_actions = [
-        w.undo_action,
-        w.redo_action,
-        None,
-        action(
-            "add_note_action",
-            "Add &note",
-            "Ctrl+Shift+N",
-            w.add_note,
-            "A Markdown note below the selected entry",
-        ),
-        action(
-            "add_fan_action",
+        SEPARATOR,
+        Item("quit", "&Quit", "Ctrl+Q", "Quit Gradfence"),
+    ],
+    "&Edit": [
+        Item("add_note", "Add &note", "Ctrl+Shift+N", "A Markdown note below the selected entry"),
+        Item(
+            "add_fan",
             "Add &fan...",
             "Ctrl+Shift+F",
-            lambda: w.browse_presets("fan"),
             "A fan from a preset: every method at 17 thresholds and 4 batch sizes, trained live",
         ),
-        action(
-            "add_map_action",
+        Item(
+            "add_map",
             "Add &map...",
             "Ctrl+Shift+M",
-            lambda: w.browse_presets("map"),
             "A map from a preset: batch size x threshold x seed, its windows and verdict",
         ),
-        action(
-            "add_log_action",
+        Item(
+            "add_log",
             "Add &log...",
             "Ctrl+Shift+L",
-            w.add_log,
             "Your own run's log of gradient norms: every rule replayed on it, thresholds advised",
         ),
-        action("rename_action", "Re&name entry...", "F2", w.rename_selected, "Retitle the entry"),
-        action(
-            "move_up_action",
-            "Move entry &up",
-            "Alt+Up",
-            lambda: w.with_selected(lambda c: w.move_card(c, -1)),
-            "Move the entry up",
-        ),
-        action(
-            "move_down_action",
-            "Move entry &down",
-            "Alt+Down",
-            lambda: w.with_selected(lambda c: w.move_card(c, 1)),
-            "Move the entry down",
-        ),
-        action(
-            "collapse_action",
-            "&Fold or unfold entry",
-            "Ctrl+E",
-            lambda: w.with_selected(lambda c: c.set_collapsed(not c.collapsed)),
-            "Fold the entry to its header",
-        ),
-        action(
-            "delete_action",
-            "&Delete entry",
-            "",
-            lambda: w.with_selected(w.delete_card),
-            "Delete the selected entry (undoable)",
-        ),
-        None,
-        action(
-            "rename_study_action",
-            "Rename the s&tudy...",
-            "",
-            lambda: rename_study(w),
-            "Change the study's title",
-        ),
-        action(
-            "save_preset_action",
+        SEPARATOR,
+        Item("rename_entry", "Re&name entry...", "F2", "Retitle the selected entry"),
+        Item("move_up", "Move entry &up", "Alt+Up", "Move the selected entry up"),
+        Item("move_down", "Move entry &down", "Alt+Down", "Move the selected entry down"),
+        Item("fold", "&Fold or unfold entry", "Ctrl+E", "Fold the entry to its header"),
+        Item("delete_entry", "&Delete entry", "", "Delete the selected entry (undoable)"),
+        SEPARATOR,
+        Item("rename_study", "Rename the s&tudy...", "", "Change the study's title"),
+        Item(
+            "save_preset",
             "Save scenario as p&reset...",
             "",
-            w.save_selected_as_preset,
             "Keep the selected entry's scenario as one of your presets",
         ),
-    ]
-    train_actions = [
-        action(
-            "train_action",
-            "&Train",
-            "Ctrl+T",
-            w.train_selected,
-            "Train the selected fan or map",
-        ),
-        action(
-            "train_all_action",
-            "Train &all",
-            "Ctrl+Shift+T",
-            w.train_all,
-            "Train every fan and map of the study",
-        ),
-        action("stop_action", "&Stop", "Ctrl+.", lambda: w.runner.stop_all(), "Stop all training"),
-        None,
-        action(
-            "forget_action",
+    ],
+    "&Train": [
+        Item("train", "&Train", "Ctrl+T", "Train the selected fan or map (or replay a log)"),
+        Item("train_all", "Train &all", "Ctrl+Shift+T", "Train every fan, map and log"),
+        Item("stop", "&Stop", "Ctrl+.", "Stop all training"),
+        SEPARATOR,
+        Item(
+            "forget",
             "&Forget results",
             "",
-            w.forget_selected,
             "Drop the selected entry's results (the cache beside the file keeps its copy)",
         ),
-    ]
-    w.auto_train_action = QtGui.QAction("Train again after an &edit", w)
-    w.auto_train_action.setCheckable(True)
-    w.auto_train_action.setChecked(w.auto_train)
-    w.auto_train_action.setStatusTip("An edit retrains its entry after a short pause")
-    w.auto_train_action.toggled.connect(lambda on: setattr(w, "auto_train", on))
-    train_actions.append(w.auto_train_action)
-    present = action(
-        "present_action",
-        "&Present",
-        "F5",
-        w.present,
-        "One entry at a time, full screen, large type; arrow keys move, Esc leaves",
-    )
-    bar = w.menuBar()
-    menus = {
-        "&File": file_actions,
-        "&Edit": edit_actions,
-        "&Train": train_actions,
-        "&View": [present, None],
-    }
-    for title, entries in menus.items():
+    ],
+    "&View": [
+        Item(
+            "present",
+            "&Present",
+            "F5",
+            "One entry at a time, full screen, large type; arrow keys move, Esc leaves",
+        ),
+    ],
+}
+TOOLBAR = (
+    "train",
+    "train_all",
+    "stop",
+    None,
+    "add_note",
+    "add_fan",
+    "add_map",
+    "add_log",
+    None,
+    "present",
+)
+
+
+def build_menus(
+    window: QtWidgets.QMainWindow,
+    undo_stack: QtGui.QUndoStack,
+    slots: Mapping[str, Callable[[], object]],
+    fill_recent: Callable[[QtWidgets.QMenu], None],
+    auto_train: Callable[[bool], None],
+) -> dict[str, QtGui.QAction]:
+    """The actions of MENUS, each calling `slots[name]`; also Undo, Redo, Open recent and the
+    "Train again after an edit" toggle. Returns the actions by name."""
+    actions: dict[str, QtGui.QAction] = {}
+    for entries in MENUS.values():
+        for item in entries:
+            if item is None:
+                continue
+            action = QtGui.QAction(item.text, window)
+            if item.shortcut:
+                action.setShortcut(QtGui.QKeySequence(item.shortcut))
+            action.setStatusTip(item.tip)
+            action.setToolTip(item.tip)
+            slot = slots[item.name]
+            action.triggered.connect(lambda _=False, slot=slot: slot())
+            actions[item.name] = action
+    actions["undo"] = undo_stack.createUndoAction(window, "&Undo")
+    actions["undo"].setShortcut(QtGui.QKeySequence(Keys.Undo))
+    actions["redo"] = undo_stack.createRedoAction(window, "&Redo")
+    actions["redo"].setShortcut(QtGui.QKeySequence(Keys.Redo))
+    toggle = QtGui.QAction("Train again after an &edit", window)
+    toggle.setCheckable(True)
+    toggle.setChecked(True)
+    toggle.setStatusTip("An edit retrains its entry after a short pause")
+    toggle.toggled.connect(auto_train)
+    actions["auto_train"] = toggle
+    bar = window.menuBar()
+    for title, entries in MENUS.items():
         menu = bar.addMenu(title)
-        for entry in entries:
-            if entry is None:
+        if title == "&Edit":
+            menu.addAction(actions["undo"])
+            menu.addAction(actions["redo"])
+            menu.addSeparator()
+        for item in entries:
+            if item is None:
                 menu.addSeparator()
             else:
-                menu.addAction(entry)
+                menu.addAction(actions[item.name])
         if title == "&File":
-            w.recent_menu = QtWidgets.QMenu("Open &recent", menu)
-            menu.insertMenu(menu.actions()[2], w.recent_menu)  # after Open study
-            w.recent_menu.aboutToShow.connect(lambda: files.fill_recent_menu(w.recent_menu))
+            recent = QtWidgets.QMenu("Open &recent", menu)
+            menu.insertMenu(menu.actions()[2], recent)  # after Open study
+            recent.aboutToShow.connect(lambda shown=recent: fill_recent(shown))
+            actions["recent"] = recent.menuAction()
+        if title == "&Train":
+            menu.addAction(toggle)
         if title == "&View":
-            for dock in w.findChildren(QtWidgets.QDockWidget):
+            menu.addSeparator()
+            for dock in window.findChildren(QtWidgets.QDockWidget):
                 menu.addAction(dock.toggleViewAction())
-    toolbar = w.addToolBar("Study")
+    toolbar = window.addToolBar("Study")
     toolbar.setObjectName("study-toolbar")
-    for entry in (
-        w.train_action,
-        w.train_all_action,
-        w.stop_action,
-        None,
-        w.add_note_action,
-        w.add_fan_action,
-        w.add_map_action,
-        w.add_log_action,
-        None,
-        present,
-    ):
-        if entry is None:
+    for name in TOOLBAR:
+        if name is None:
             toolbar.addSeparator()
         else:
-            toolbar.addAction(entry)
-
-
-def rename_study(w: MainWindow) -> None:
-    title, ok = QtWidgets.QInputDialog.getText(w, "Rename the study", "Title:", text=w.study.title)
-    if ok and title.strip() and title.strip() != w.study.title:
-        w.undo_stack.push(commands.RenameStudy(w.study, title.strip()))
+            toolbar.addAction(actions[name])
+    return actions

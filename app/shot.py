@@ -31,8 +31,8 @@ def shot(
     for number, option in [(entry, "--entry"), *((n, "--collapse") for n in collapse)]:
         if number is not None and not 1 <= number <= len(study):
             raise GradfenceInputError(f"{option} {number}: {path} has entries 1 to {len(study)}.")
-    from app.desktop import application
     from app.main_window import MainWindow
+    from app.qt_app import application
 
     app = application()
     window = MainWindow(study)

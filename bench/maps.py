@@ -23,7 +23,8 @@ import torch
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from core.engine import Engine, Member, _lr_factor
-from core.maps import plan, run_map
+from core.map_run import run_map
+from core.maps import plan
 from core.scenario import ClipConfig, Scenario, load_scenario
 
 PRESET = Path(__file__).resolve().parent.parent / "scenarios" / "batch-size-coupling.toml"

@@ -1,8 +1,9 @@
-"""Maps: batch size x threshold x seed, trained as stacks on persistent worker processes.
+"""Maps: batch size x threshold x seed. What a map's chunks are, how one trains, its table.
 
 A map is cut into chunks (one batch size, at most CHUNK members each) that depend on the
 scenario alone, never on the number of workers, so every point's numbers are the same whatever
-`jobs` is and a resumed map ends with the same table as an uninterrupted one.
+trains them and a resumed map ends with the same table as an uninterrupted one. Running a whole
+map (its folder, its workers) is core.map_run's.
 """
 
 from __future__ import annotations
@@ -10,19 +11,16 @@ from __future__ import annotations
 import csv
 import io
 import math
-import os
-from collections import deque
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from core.errors import GradfenceInputError
 from core.formats import format_value, single
 from core.member import Member
-from core.scenario import Scenario, dumps_scenario, loads_scenario
+from core.scenario import Scenario, loads_scenario
 
 CHUNK = 24  # members per stack: large enough to batch well, small enough to spread over cores
 COLUMNS = (
@@ -133,158 +131,7 @@ def _threshold_text(threshold: float) -> str:
     return "" if math.isnan(threshold) else repr(float(threshold))
 
 
-@dataclass
-class MapProgress:
-    done: int  # chunks finished, resumed ones included
-    total: int
-    computed: int  # chunks computed in this call (not resumed)
-    members_done: int = 0
-    members_total: int = 0
-
-
-class MapWorkerError(GradfenceInputError):
-    """A chunk failed in a worker (twice, when the worker died); the message says how to go on."""
-
-
-def run_map(
-    scenario: Scenario,
-    out: Path,
-    jobs: int | None = None,
-    resume: bool = False,
-    fresh: bool = False,
-    on_progress: Callable[[MapProgress], None] | None = None,
-    warn: Callable[[str], None] | None = None,
-    cluster: str | None = None,
-    cluster_timeout: float = 10.0,
-) -> list[dict[str, Any]]:
-    """Train every chunk not already in `out/map.csv`; returns the full table, sorted.
-
-    Rows are appended to map.csv as chunks finish, so an interrupted map keeps its finished
-    members; at the end the table is rewritten in grid order. See core/map_folder.py for what
-    the folder may hold and when it is refused. `jobs` is capped by the cores and by what the
-    free memory holds. With `cluster`, a Dask scheduler's address, the chunks train on its
-    workers instead (core.cluster) and `jobs` does not apply.
-    """
-    from core.map_folder import open_folder
-
-    chunks = plan(scenario)
-    total = sum(len(c.points) for c in chunks)
-    warn = warn or (lambda text: None)
-    cap = max(len(c.points) for c in chunks) if chunks else 1
-    biggest = max((c.batch_size for c in chunks), default=scenario.train.batch_size)
-    from core.memory import check_fits, processes_that_fit
-
-    check_fits(scenario, cap, biggest, seeds=len(scenario.map.seeds))
-    jobs = processes_that_fit(scenario, cap, biggest, jobs or os.cpu_count() or 1)
-
-    def summary(table: Path) -> str:
-        rows = read_table(table)
-        return f"{len(rows)} of {total} members finished"
-
-    folder = open_folder(
-        out, scenario.hash(), scenario.content(), total, resume, fresh, warn, summary
-    )
-    with folder:
-        done_rows = read_table(folder.table, warn) if folder.table.exists() else []
-        keys = {p.key(scenario) for c in chunks for p in c.points}
-        stray = [r for r in done_rows if _row_key(r) not in keys]
-        if stray:
-            warn(f"{folder.table}: {len(stray)} rows name no member of this map; dropped.")
-        finished = {_row_key(r) for r in done_rows}
-        todo = [c for c in chunks if not all(p.key(scenario) in finished for p in c.points)]
-        # A chunk only partly on file (a kill that tore its append) is redone whole.
-        keep = {p.key(scenario) for c in chunks if c not in todo for p in c.points}
-        done_rows = [r for r in done_rows if _row_key(r) in keep]
-        # Start from a clean file: finished chunks only, no torn line for new rows to join.
-        folder.rewrite(table_csv(done_rows, header=True))
-        progress = MapProgress(len(chunks) - len(todo), len(chunks), 0, len(done_rows), total)
-        if on_progress:
-            on_progress(replace(progress))
-        text = dumps_scenario(scenario)
-        rows = list(done_rows)
-        ordered = sorted(todo, key=lambda c: -c.cost)
-        if cluster is None:
-            finishing = _execute(text, ordered, jobs)
-        else:
-            from core.cluster import execute_on_cluster  # dask.distributed: an optional extra
-
-            finishing = execute_on_cluster(cluster, text, ordered, cluster_timeout)
-        for chunk_rows in finishing:
-            rows += chunk_rows
-            folder.append(table_csv(chunk_rows, header=False))
-            progress.done += 1
-            progress.computed += 1
-            progress.members_done += len(chunk_rows)
-            if on_progress:
-                on_progress(replace(progress))
-        rows = sort_table(scenario, rows)
-        folder.rewrite(table_csv(rows, header=True))
-    return rows
-
-
-def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[str, Any]]]:
-    """Yield each chunk's rows as it finishes.
-
-    With jobs = N, N - 1 worker processes (core.pool: a dead one is replaced and its chunk given
-    to the new one once) take chunks from the costly end of the queue while this process takes
-    them from the cheap end: it starts at once, while a spawned worker first spends seconds
-    importing torch.
-    """
-    if not chunks:
-        return
-    import torch
-
-    from core.pool import WorkerPool
-    from core.work import CHUNK, Job
-
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)  # like every worker: one thread per process
-    queue = deque(chunks)  # costliest first
-    pool = WorkerPool(jobs - 1) if jobs > 1 else None
-    arrived: deque[list[dict[str, Any]]] = deque()
-    pending = 0
-    failure: list[str] = []
-
-    def handle(kind: str, run_id: int, batch: int, payload: Any) -> None:
-        nonlocal pending
-        if kind == "rows":
-            arrived.append(payload)
-        elif kind in ("done", "stopped"):
-            pending -= 1
-        elif kind == "error":
-            pending -= 1
-            failure.append(f"batch size {batch}: {str(payload).strip().splitlines()[-1]}")
-
-    try:
-        if pool is not None:
-            pool.start()
-        run_id = pool.new_run_id() if pool is not None else 0
-        while queue or pending or arrived:
-            while pool is not None and queue and pending < 2 * (jobs - 1):
-                pool.submit(
-                    Job(run_id, CHUNK, text, queue[0].batch_size, chunk=queue.popleft()), handle
-                )
-                pending += 1
-            while arrived:
-                yield arrived.popleft()
-            if failure:
-                raise MapWorkerError(
-                    f"a worker failed on a chunk at {failure[0]}; the finished members are "
-                    "kept: continue with --resume."
-                )
-            if queue:
-                yield run_chunk(text, queue.pop())
-                if pool is not None:
-                    pool.poll()
-            elif pending and pool is not None:
-                pool.wait(0.5)
-    finally:
-        if pool is not None:
-            pool.shutdown()
-        torch.set_num_threads(threads)
-
-
-def _row_key(row: dict[str, Any]) -> tuple[str, str, int, int]:
+def row_key(row: dict[str, Any]) -> tuple[str, str, int, int]:
     return (
         str(row["label"]),
         _threshold_text(float(row["threshold"])),

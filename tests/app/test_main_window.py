@@ -31,9 +31,9 @@ def test_the_demo_study_opens_without_training(qtbot: QtBot, tmp_path: Path) -> 
     )
     win = MainWindow(Study.open(shipped / demo_path().name))
     qtbot.addWidget(win)
-    assert win.outline.count() == 5
-    assert len(win.fan_views) == 2 and len(win.map_views) == 1
-    assert all(e.status == NOT_TRAINED for e in win.study.trained_entries)
+    assert win.outline.count() == 7
+    assert len(win.fan_views) == 2 and len(win.map_views) == 1 and len(win.log_views) == 1
+    assert all(e.status == NOT_TRAINED for e in win.study.workable)
     assert not win.pool.started  # nothing trains, and no worker starts, until asked
     win.close()
 

@@ -24,7 +24,8 @@ import core
 from app.cli import main
 from core.cluster import execute_on_cluster
 from core.errors import GradfenceInputError
-from core.maps import Chunk, MapProgress, Point, plan, read_table, run_map, table_csv
+from core.map_run import MapProgress, run_map
+from core.maps import Chunk, Point, plan, read_table, table_csv
 from core.scenario import Scenario, parse_scenario
 from tests.core.test_maps import SMALL
 

@@ -15,7 +15,8 @@ import pytest
 
 from core.analysis import analyse, stability_map
 from core.engine import Engine, Member
-from core.maps import MapProgress, plan, read_table, run_map
+from core.map_run import MapProgress, run_map
+from core.maps import plan, read_table
 from core.profile import norm_profile
 from core.results import collect
 from core.scenario import ClipConfig, load_scenario, parse_scenario
