@@ -12,6 +12,7 @@ import tomllib
 from html.parser import HTMLParser
 from pathlib import Path
 
+import pytest
 from PySide6 import QtGui
 
 from app.main_window import MainWindow
@@ -128,3 +129,37 @@ def test_note_markdown_in_a_handout_loads_nothing() -> None:
         and "docs (https://host/d)" in fragment
     )
     check_self_contained(f"<html><body>{fragment}</body></html>", images=0)
+
+
+def test_the_handout_is_built_from_the_study_and_never_makes_a_main_window(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from PySide6 import QtWidgets
+
+    import app.handout as handout
+    from tests.app.conftest import STUDY
+
+    path = tmp_path / "small.study.toml"
+    path.write_text(STUDY)
+    seen: list[str] = []
+
+    def windows() -> None:
+        seen.extend(type(w).__name__ for w in QtWidgets.QApplication.topLevelWidgets())
+        assert not any(
+            isinstance(w, QtWidgets.QMainWindow) for w in QtWidgets.QApplication.topLevelWidgets()
+        )
+
+    entry_html = handout.entry_html
+
+    def checked_entry(index: int, model: object) -> str:
+        text = entry_html(index, model)
+        windows()
+        return text
+
+    monkeypatch.setattr(handout, "entry_html", checked_entry)
+    out = tmp_path / "small.html"
+    count, failed = handout.write_handout(path, out, progress=lambda share, text: windows())
+    assert (count, failed) == (2, [])
+    parsed = check_self_contained(out.read_text(encoding="utf-8"), images=1)
+    assert len(parsed.pre) == 1
+    assert "MainWindow" not in seen and "FanView" in seen  # the fan's view, made on its own
