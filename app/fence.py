@@ -27,7 +27,7 @@ GAP = 14
 # Relative loss (loss / best at that batch size) -> colour: deep green at the best, amber at
 # 1.5x, pale at 3x and beyond. Diverged members are dark and crossed; untrained ones empty.
 STOPS = ((1.0, (22, 110, 86)), (1.5, (232, 185, 75)), (3.0, (244, 239, 230)))
-DIVERGED = QtGui.QColor(70, 70, 70)
+DIVERGED = QtGui.QColor(40, 40, 40)  # darker than any loss, and crossed
 EMPTY = QtGui.QColor(236, 236, 236)
 
 

@@ -251,3 +251,27 @@ def test_recent_studies_new_and_collapse(
     assert card.collapsed and card.body.isHidden()
     card.set_collapsed(False)
     assert not card.collapsed
+
+
+def test_after_an_edit_the_earlier_curves_stay_faded_until_the_new_ones_have_arrived(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    view = trained(qtbot, window)
+
+    def drawn(curves: dict) -> int:  # type: ignore[type-arg]
+        xs = (c.getOriginalDataset()[0] for c in curves.values())
+        return sum(0 if x is None else len(x) for x in xs)
+
+    model = view.model
+    model.set_scenario(model.scenario.with_overrides({"train.steps": 400}))
+    window.runner.train(model)
+    view.refresh()
+    assert drawn(view.curves) == 0 and drawn(view.faded) > 0  # nothing new yet: the old, faded
+    qtbot.waitUntil(lambda: model.current_stack(view.batch_size) is not None, timeout=60_000)
+    window._on_redraw_tick()
+    if model.status == "training":  # both, to compare, while the rest trains
+        assert drawn(view.curves) > 0 and drawn(view.faded) > 0
+    qtbot.waitUntil(lambda: model.status == "trained", timeout=90_000)
+    window._on_redraw_tick()
+    view.refresh()
+    assert drawn(view.curves) > 0 and drawn(view.faded) == 0 and model.before == {}

@@ -79,3 +79,88 @@ def test_opening_the_app_without_a_display_is_a_clear_input_error(
     err = capsys.readouterr().err
     assert "no display" in err and "ssh -X" in err and "gradfence shot" in err
     assert "gradfence handout" in err and "offscreen" not in err
+
+
+OLD_PRESET = """\
+schema = 1
+name = "An old preset"
+[train]
+steps = 30
+[[clip]]
+method = "global-norm"
+sweep = [0.1, 1.0]
+[sweep]
+batch_sizes = [8, 16]
+"""
+
+OLD_NOTEBOOK = """\
+schema = 1
+title = "An old notebook"
+
+[[entry]]
+kind = "note"
+title = "Words"
+text = "Still here."
+
+[[entry]]
+kind = "run"
+title = "A run entry"
+preset = "old.toml"
+[entry.set]
+"sweep.seeds" = [0, 1]
+
+[[entry]]
+kind = "sweep"
+title = "A sweep entry"
+[entry.scenario.sweep]
+batch_sizes = [16, 32]
+"""
+
+
+def test_a_schema_1_preset_loads_as_schema_2_with_a_notice_and_stays_unchanged(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from core.scenario import load_scenario
+
+    path = tmp_path / "old.toml"
+    path.write_text(OLD_PRESET)
+    notices: list[str] = []
+    scenario = load_scenario(path, notices)
+    assert scenario.map.batch_sizes == (8, 16) and scenario.clip[0].map_thresholds == (0.1, 1.0)
+    assert scenario.schema == 2 and len(notices) == 1 and "schema 1" in notices[0]
+    assert main(["check", str(path)]) == 0
+    assert "note:" in capsys.readouterr().err
+    assert path.read_text() == OLD_PRESET  # reading never rewrites a user's file
+
+
+def test_an_old_notebook_opens_as_a_study_with_one_notice_and_stays_unchanged(
+    tmp_path: Path,
+) -> None:
+    from core.study import Study
+
+    (tmp_path / "old.toml").write_text(OLD_PRESET)
+    path = tmp_path / "old.notebook.toml"
+    path.write_text(OLD_NOTEBOOK)
+    study = Study.open(path)
+    assert [e.kind for e in study] == ["note", "fan", "map"]
+    fan, mapped = study.trained_entries
+    assert fan.scenario.map.seeds == (0, 1) and fan.scenario.map.batch_sizes == (8, 16)
+    assert mapped.scenario.map.batch_sizes == (16, 32)
+    assert any("schema 1" in n and "fans" in n for n in study.notices)
+    assert not study.modified and path.read_text() == OLD_NOTEBOOK
+    # Written back, it is a schema-2 study that loads to the same entries, with no notice.
+    new = tmp_path / "old.study.toml"
+    study.save(new)
+    again = load_study(new)
+    assert again.entries == study.to_file().entries
+    assert not any("old.notebook" in n for n in again.notices)
+    assert 'kind = "fan"' in new.read_text() and "[sweep]" not in new.read_text()
+
+
+def test_an_empty_study_file_is_refused_in_one_sentence(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "empty.study.toml"
+    path.write_text("")
+    assert main(["check", str(path)]) == 2
+    assert "is empty" in capsys.readouterr().err
