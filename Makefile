@@ -27,6 +27,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/engine.py
 	$(BIN)/python bench/maps.py
+	$(BIN)/python bench/advise.py
 	$(BIN)/python bench/ui.py
 
 clean:

@@ -17,6 +17,7 @@ import numpy as np
 
 from core.errors import GradfenceInputError
 from core.fileio import write_text_atomic
+from core.formats import json_number
 from core.noise import (
     Carry,
     Interval,
@@ -136,14 +137,15 @@ def _last_batch(log: NormLog) -> int:
 # advice.json
 
 
-def _number(value: float | None) -> float | None:
-    """JSON has no inf or NaN: every non-finite number is written as null."""
-    if value is None or not math.isfinite(value):
+def _number(value: float | None) -> float | str | None:
+    """JSON has no inf or NaN: NaN is null and an infinity "inf" or "-inf", as in every file of
+    the tool (core.formats.json_number)."""
+    if value is None:
         return None
-    return float(value)
+    return json_number(float(value))
 
 
-def _interval_json(interval: Interval | None) -> dict[str, float | None] | None:
+def _interval_json(interval: Interval | None) -> dict[str, float | str | None] | None:
     if interval is None:
         return None
     return {"low": _number(interval.low), "high": _number(interval.high)}

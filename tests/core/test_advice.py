@@ -62,7 +62,7 @@ def test_advice_json_has_the_documented_keys_and_is_strict_json(tmp_path: Path) 
     json.dumps(data, allow_nan=False)  # no NaN or Infinity anywhere
 
 
-def test_non_finite_numbers_are_written_as_null() -> None:
+def test_non_finite_numbers_are_written_as_null_or_inf_never_as_bare_json_infinity() -> None:
     # Before its warm-up completes no adaptive rule fires; a log this short never warms up.
     advice = advise(plain_log(np.array([1.0, math.inf, 2.0, math.nan])))
     data = advice_json(advice)
