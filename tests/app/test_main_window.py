@@ -139,3 +139,22 @@ def test_a_failing_run_shows_in_its_entry_and_the_app_lives_on(
     view.model.reset()
     trained(qtbot, window)  # the same workers still train
     assert view.model.status == TRAINED and view.model.status != TRAINING
+
+
+def test_an_edit_trains_the_entry_again_by_itself_after_a_pause_unless_turned_off(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    view = trained(qtbot, window)
+    form = window.inspector.widget(0)
+    window.auto_train = False
+    form.widgets["train.steps"].setValue(60)  # type: ignore[attr-defined]
+    qtbot.wait(1500)
+    assert view.model.status == TRAINED and view.model.edited  # left alone: the option is off
+    window.menu_actions["auto_train"].setChecked(False)
+    window.menu_actions["auto_train"].setChecked(True)
+    assert window.auto_train
+    form.widgets["train.steps"].setValue(70)  # type: ignore[attr-defined]
+    assert view.model.status == TRAINED  # not at once: after a short pause
+    qtbot.waitUntil(lambda: view.model.status == TRAINING, timeout=5_000)
+    qtbot.waitUntil(lambda: view.model.status == TRAINED, timeout=90_000)
+    assert not view.model.edited and view.model.scenario.train.steps == 70
