@@ -1,3 +1,3 @@
 """Gradfence computation: scenarios, data, models, clipping, engine, results. No Qt here."""
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"

@@ -21,6 +21,7 @@ from core.map_model import MapModel
 from core.study_file import EntryRecord, StudyFile, dumps_study, load_study, save_study
 
 UNTITLED = "Untitled study"
+SAME_PATH = object()  # Study.from_file: at the file's own path
 # Entry changes that change the file; the others ("status", "data") only change results.
 FILE_CHANGES = ("title", "text", "scenario")
 
@@ -95,13 +96,14 @@ class Study:
     # -- files --------------------------------------------------------------------------------
 
     @classmethod
-    def from_file(cls, study_file: StudyFile, path: Path | str | None = "same") -> Study:
+    def from_file(cls, study_file: StudyFile, path: Path | None | object = SAME_PATH) -> Study:
         """A study of what `study_file` holds, at the file's own path unless `path` says another
         (None: a study never saved, such as the recovery copy of one)."""
+        where = study_file.path if path is SAME_PATH else path
         study = cls(
             study_file.title,
             [entry_from_record(e) for e in study_file.entries],
-            study_file.path if isinstance(path, str) else path,
+            where if isinstance(where, Path) else None,
             study_file.notices,
         )
         study.restore_cached()
