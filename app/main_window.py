@@ -28,7 +28,7 @@ from core.fan_model import FanModel
 from core.log_entry import LogSource
 from core.log_model import LogModel
 from core.map_model import MapModel
-from core.pool import WorkerPool
+from core.pool import DESKTOP_NICE, WorkerPool, desktop_workers
 from core.presets import PresetInfo
 from core.runner import Runner
 from core.scenario import Scenario
@@ -45,7 +45,7 @@ RETRAIN_MS = 800  # after an edit, the pause before an entry trains again by its
 class MainWindow(QtWidgets.QMainWindow):
     def __init__(self, study: Study, pool: WorkerPool | None = None) -> None:
         super().__init__()
-        self.pool = pool or WorkerPool()
+        self.pool = pool or WorkerPool(desktop_workers(), nice=DESKTOP_NICE)
         self.study = study
         self.runner = Runner(study, self.pool)
         self.cards: list[EntryCard] = []

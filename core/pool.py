@@ -1,17 +1,24 @@
 """Persistent worker processes that perform jobs (core.work), with no Qt.
 
 Tiny torch ops hold the GIL most of the time, so training in a thread would starve a window's
-event loop: each worker is a spawned process with one torch thread, started once (importing torch
-takes seconds, so they start early and are reused). A job goes to the worker with the least
-queued work; `poll()` (a window's timer, or `wait()` in a loop) delivers what workers send to the
-job's handler. Stopping a run is a message. A worker that dies is replaced and its unfinished
-jobs are given to the new one once; a job that kills a worker twice is reported as an error.
-Workers end when asked, when their parent is gone, and within `shutdown`'s timeout in any case.
+event loop: each worker is a spawned process with one torch thread, started once and reused. It
+imports torch and the engine and trains a two-step warm-up as soon as it starts, so that the
+first real job starts at once. Jobs wait in one queue here, the most urgent first (a log's
+replay, then the fan members under the slider, then the rest of a fan, then maps), and each
+worker is given at most two at a time: it is never idle while the queue holds work, and an urgent
+job never waits behind a long queue in a worker. `poll()` (a window's timer, or `wait()` in a
+loop) delivers what workers send to the job's handler. Stopping a run is a message.
+
+A window's workers run at a lower priority (`nice`), so that they may use every core while the
+window, at normal priority, still answers at once. A worker that dies is replaced and its
+unfinished jobs go back to the queue once; a job that kills a worker twice is reported as an
+error. Workers end when asked, when their parent is gone, and within `shutdown`'s timeout.
 """
 
 from __future__ import annotations
 
 import contextlib
+import heapq
 import itertools
 import multiprocessing
 import os
@@ -26,16 +33,44 @@ from core.work import Handler, Job, perform
 
 DONE_KINDS = ("done", "stopped", "error", "skipped")
 PARENT_CHECK = 0.5  # seconds between a waiting worker's checks that its parent still lives
+DEPTH = 2  # jobs given to a worker at a time: one training, one waiting
+DESKTOP_NICE = 10  # the window's workers yield the cores to the window itself
 
 
-def worker_main(inbox: Any, outbox: Any) -> None:
+def desktop_workers() -> int:
+    """A window's workers: one per core (they run niced, so the window keeps answering)."""
+    return max(1, os.cpu_count() or 1)
+
+
+def warm_up() -> None:
+    """Train two steps of a tiny stack: torch's first calls of each kernel are slow."""
+    from core.engine import Engine
+    from core.member import Member
+    from core.scenario import ClipConfig, parse_scenario
+
+    scenario = parse_scenario(
+        {
+            "data": {"n_train": 64, "n_val": 16},
+            "model": {"hidden": [4]},
+            "train": {"steps": 2, "batch_size": 8, "eval_every": 1},
+            "clip": [{"method": "global-norm"}, {"method": "example-norm"}],
+        }
+    )
+    members = [Member(c, 0) for c in scenario.clip] + [Member(ClipConfig(method="none"), 0)]
+    for _ in Engine(scenario, members, keep_norms=True).records():
+        pass
+
+
+def worker_main(inbox: Any, outbox: Any, nice: int = 0) -> None:
     """The loop of one worker process: perform jobs, watch for stops between record batches."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+    if nice:
+        with contextlib.suppress(OSError, AttributeError):
+            os.nice(nice)
     import torch
 
     torch.set_num_threads(1)
-    import core.engine  # noqa: F401  (imported now, so that the first job starts at once)
-
+    warm_up()
     parent = multiprocessing.parent_process()
     stopped: set[int] = set()
     held: deque[Job] = deque()
@@ -91,15 +126,18 @@ class _Worker:
 
 
 class WorkerPool:
-    """Worker processes for jobs; `size` defaults to one per core but one (the caller keeps a
-    core: a window must stay responsive)."""
+    """Worker processes for jobs. `size` defaults to one per core but one (the caller keeps a
+    core); a window passes desktop_workers() and DESKTOP_NICE instead."""
 
-    def __init__(self, size: int | None = None) -> None:
+    def __init__(self, size: int | None = None, nice: int = 0) -> None:
         self.size = size or max(1, (os.cpu_count() or 2) - 1)
+        self.nice = nice
         self._context = multiprocessing.get_context("spawn")
         self._outbox: Any = None
         self._workers: list[_Worker] = []
         self._handlers: dict[int, Handler] = {}
+        self._queue: list[tuple[int, int, Job]] = []  # (priority, order, job): a heap
+        self._order = itertools.count()
         self._job_ids = itertools.count(1)
         self._run_ids = itertools.count(1)
         self.busy: dict[int, int] = {}  # run_id -> jobs not finished
@@ -129,7 +167,10 @@ class WorkerPool:
     def _spawn(self) -> _Worker:
         inbox = self._context.Queue()
         process = self._context.Process(
-            target=worker_main, args=(inbox, self._outbox), daemon=True, name="gradfence-worker"
+            target=worker_main,
+            args=(inbox, self._outbox, self.nice),
+            daemon=True,
+            name="gradfence-worker",
         )
         process.start()
         return _Worker(process, inbox)
@@ -137,6 +178,7 @@ class WorkerPool:
     def shutdown(self, timeout: float = 2.0) -> None:
         """End every worker within `timeout` seconds (those that do not finish are killed)."""
         self._closing = True
+        self._queue.clear()
         for w in self._workers:
             with contextlib.suppress(OSError, ValueError):
                 w.inbox.put(("quit",))
@@ -164,13 +206,22 @@ class WorkerPool:
         job = replace(job, job_id=next(self._job_ids))
         self._handlers[job.run_id] = handler
         self.busy[job.run_id] = self.busy.get(job.run_id, 0) + 1
-        self._send(min(self._workers, key=lambda w: len(w.jobs)), job)
+        heapq.heappush(self._queue, (job.priority, next(self._order), job))
+        self._dispatch()
 
-    def _send(self, worker: _Worker, job: Job) -> None:
-        worker.jobs.append(job)
-        worker.inbox.put(("job", job))
+    def _dispatch(self) -> None:
+        """Give waiting jobs, most urgent first, to the workers that have room."""
+        for worker in self._workers:
+            while self._queue and len(worker.jobs) < DEPTH:
+                _, _, job = heapq.heappop(self._queue)
+                if job.run_id not in self.busy:
+                    continue  # stopped while it waited
+                worker.jobs.append(job)
+                worker.inbox.put(("job", job))
 
     def stop(self, run_id: int) -> None:
+        self._queue = [item for item in self._queue if item[2].run_id != run_id]
+        heapq.heapify(self._queue)
         for w in self._workers:
             w.inbox.put(("stop", run_id))
         self.busy.pop(run_id, None)
@@ -188,6 +239,7 @@ class WorkerPool:
             self._deliver(message)
             count += 1
         self._replace_dead()
+        self._dispatch()
         return count
 
     def wait(self, timeout: float) -> int:
@@ -198,6 +250,7 @@ class WorkerPool:
             message = self._outbox.get(timeout=timeout)
         except queue.Empty:
             self._replace_dead()
+            self._dispatch()
             return 0
         self._deliver(message)
         return 1 + self.poll()
@@ -236,13 +289,13 @@ class WorkerPool:
             self.replaced += 1
             w.inbox.cancel_join_thread()
             w.inbox.close()
-            fresh = self._spawn()
-            self._workers[index] = fresh
+            self._workers[index] = self._spawn()
             for job in w.jobs:
                 if job.run_id not in self.busy:
                     continue  # stopped meanwhile
                 if not job.retried:
-                    self._send(fresh, replace(job, retried=True))
+                    retry = replace(job, retried=True)
+                    heapq.heappush(self._queue, (job.priority, next(self._order), retry))
                     continue
                 self._deliver(
                     (

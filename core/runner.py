@@ -21,9 +21,9 @@ from core.log_model import LogModel
 from core.map_model import MapModel
 from core.scenario import dumps_scenario
 from core.study import Study, StudyEvent
-from core.work import CHUNK, FAN, LOG, PROFILE, Handler, Job
+from core.work import CHUNK, FAN, FAR, LOG, LONG, NEAR, PROFILE, URGENT, Handler, Job
 
-NEAR = 2  # fan thresholds on each side of the slider's that train first
+STEPS_NEAR = 2  # fan thresholds on each side of the slider's that train first
 
 
 class Pool(Protocol):
@@ -35,20 +35,22 @@ class Pool(Protocol):
 
 
 def fan_jobs(model: FanModel, focus: float | None = None) -> list[tuple[int, tuple[int, ...]]]:
-    """(batch size, member columns) in the order to train them.
+    """(batch size, member columns) in the order to train them (the first len(batch sizes) are
+    the members near `focus`, when it is given).
 
-    With `focus` (the slider's factor), each batch size first trains the members within NEAR
+    With `focus` (the slider's factor), each batch size first trains the members within two
     fan steps of it (and the members that have no threshold fan), smallest batch first, so the
-    curves under the slider arrive first; then the rest of every batch size.
+    curves under the slider arrive first; then the rest of every batch size, largest first (the
+    longest job starts early, so the whole fan ends sooner).
     """
     members = fan_members(model.scenario)
     everyone = tuple(range(len(members)))
     sizes = sorted(model.batch_sizes)
-    if focus is None:
-        return [(b, everyone) for b in sizes]
+    if focus is None:  # nobody is looking at a slider: the costliest first ends soonest
+        return [(b, everyone) for b in reversed(sizes)]
     factors = fan_factors()
     centre = int(min(range(len(factors)), key=lambda i: abs(math.log(factors[i] / focus))))
-    near = set(range(centre - NEAR, centre + NEAR + 1))
+    near = set(range(centre - STEPS_NEAR, centre + STEPS_NEAR + 1))
     first: list[int] = []
     position: dict[str, int] = {}
     for column, member in enumerate(members):
@@ -60,7 +62,7 @@ def fan_jobs(model: FanModel, focus: float | None = None) -> list[tuple[int, tup
     rest = tuple(c for c in everyone if c not in first)
     jobs = [(b, tuple(first)) for b in sizes]
     if rest:
-        jobs += [(b, rest) for b in sizes]
+        jobs += [(b, rest) for b in reversed(sizes)]  # the costliest first: it ends the fan
     return jobs
 
 
@@ -88,17 +90,21 @@ class Runner:
         if isinstance(entry, FanModel):
             text = dumps_scenario(entry.scenario)
             entry.begin(run_id)
-            for batch, columns in fan_jobs(entry, focus):
-                self.pool.submit(Job(run_id, FAN, text, batch, columns), handler)
+            jobs = fan_jobs(entry, focus)
+            first = len(entry.batch_sizes) if focus is not None and len(jobs) > 1 else 0
+            for index, (batch, columns) in enumerate(jobs):
+                urgency = NEAR if index < first else FAR
+                self.pool.submit(Job(run_id, FAN, text, batch, columns, priority=urgency), handler)
         elif isinstance(entry, MapModel):
             text = dumps_scenario(entry.scenario)
             chunks = entry.begin(run_id)
-            self.pool.submit(Job(run_id, PROFILE, text), handler)
+            self.pool.submit(Job(run_id, PROFILE, text, priority=LONG), handler)
             for chunk in chunks:
-                self.pool.submit(Job(run_id, CHUNK, text, chunk.batch_size, chunk=chunk), handler)
+                job = Job(run_id, CHUNK, text, chunk.batch_size, chunk=chunk, priority=LONG)
+                self.pool.submit(job, handler)
         elif isinstance(entry, LogModel):
             entry.begin(run_id)
-            self.pool.submit(Job(run_id, LOG, "", log=entry.source), handler)
+            self.pool.submit(Job(run_id, LOG, "", log=entry.source, priority=URGENT), handler)
         else:
             raise TypeError(f"cannot train {type(entry).__name__}")
         if not self.training():

@@ -96,7 +96,7 @@ class Study:
     # -- files --------------------------------------------------------------------------------
 
     @classmethod
-    def from_file(cls, study_file: StudyFile, path: Path | None | object = SAME_PATH) -> Study:
+    def from_file(cls, study_file: StudyFile, path: Path | object | None = SAME_PATH) -> Study:
         """A study of what `study_file` holds, at the file's own path unless `path` says another
         (None: a study never saved, such as the recovery copy of one)."""
         where = study_file.path if path is SAME_PATH else path

@@ -20,6 +20,9 @@ from dataclasses import dataclass
 from typing import Any
 
 FAN, CHUNK, PROFILE, LOG = "fan", "chunk", "profile", "log"
+# How urgent a job is (lower first): a log's replay takes a moment and is looked at at once; the
+# fan members under the slider before the rest of the fan; maps, the longest, last.
+URGENT, NEAR, FAR, LONG = 0, 1, 2, 3
 SEND_EVERY = 0.03  # seconds between record batches: about the rate the window redraws
 
 Send = Callable[[str, Any], None]
@@ -35,6 +38,7 @@ class Job:
     columns: tuple[int, ...] = ()  # a fan's members (indices into fan_members) to train
     chunk: Any = None  # core.maps.Chunk, for CHUNK
     log: Any = None  # core.log_entry.LogSource, for LOG
+    priority: int = FAR
     job_id: int = 0  # set by the pool
     retried: bool = False  # set by a pool that gave it to a second worker
 
