@@ -11,6 +11,7 @@ from PySide6 import QtCore, QtWidgets
 
 from app.axes import tick_text
 from app.colors import method_color
+from app.entry_header import EntryHeader
 from app.export import export_menu
 from app.fan_plots import FanPlots
 from app.fence import FenceView
@@ -38,18 +39,12 @@ class FanView(QtWidgets.QFrame):
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(6, 2, 6, 6)
 
-        header = QtWidgets.QHBoxLayout()
-        self.state_label = QtWidgets.QLabel()
-        header.addWidget(self.state_label, 1)
-        self.train_button = QtWidgets.QPushButton("Train")
-        self.train_button.setToolTip("Train this fan: every method at 17 thresholds, 4 batch sizes")
-        self.stop_button = QtWidgets.QPushButton("Stop")
-        self.export_button = QtWidgets.QToolButton()
-        self.export_button.setText("Export")
-        self.export_button.setPopupMode(QtWidgets.QToolButton.ToolButtonPopupMode.InstantPopup)
-        for button in (self.train_button, self.stop_button, self.export_button):
-            header.addWidget(button)
-        layout.addLayout(header)
+        self.header = EntryHeader(
+            "Train", "Train this fan: every method at 17 thresholds, 4 batch sizes"
+        )
+        layout.addLayout(self.header)
+        self.state_label = self.header.state_label
+        self.train_button, self.stop_button = self.header.train_button, self.header.stop_button
 
         self.fence = FenceView(model)
         layout.addWidget(self.fence)
@@ -93,7 +88,7 @@ class FanView(QtWidgets.QFrame):
         self.canvas = FanPlots()
         layout.addWidget(self.canvas, 1)
 
-        self.export_button.setMenu(export_menu(self, self.canvas, self.model))
+        self.header.export_button.setMenu(export_menu(self, self.canvas, self.model))
         self._build_curves()
 
         self.train_button.clicked.connect(lambda: self.train_requested.emit(self, self.factor))
@@ -205,11 +200,7 @@ class FanView(QtWidgets.QFrame):
         text = m.state_text()
         if m.status == "training":
             text += f": {m.progress_text()}"
-        self.state_label.setText(text)
-        bad = m.edited or m.status == "failed"
-        self.state_label.setStyleSheet(f"color: {'#A33A1E' if bad else '#333333'}")
-        self.train_button.setEnabled(m.status != "training")
-        self.stop_button.setEnabled(m.status == "training")
+        self.header.show_state(text, m.edited or m.status == "failed", m.status == "training")
 
     # -- selection ---------------------------------------------------------------------------
 

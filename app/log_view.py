@@ -12,6 +12,7 @@ from PySide6 import QtCore, QtWidgets
 
 from app.axes import LogAxis, PlainAxis, tick_text
 from app.colors import MUTED, OUTLIER_COLOR
+from app.entry_header import EntryHeader
 from app.export import export_menu
 from core.advice import Advice, advice_lines
 from core.log_model import LogModel
@@ -74,18 +75,10 @@ class LogView(QtWidgets.QFrame):
         )
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(6, 2, 6, 6)
-        header = QtWidgets.QHBoxLayout()
-        self.state_label = QtWidgets.QLabel()
-        header.addWidget(self.state_label, 1)
-        self.train_button = QtWidgets.QPushButton("Replay")
-        self.train_button.setToolTip("Read the log again and replay every rule on it")
-        self.stop_button = QtWidgets.QPushButton("Stop")
-        self.export_button = QtWidgets.QToolButton()
-        self.export_button.setText("Export")
-        self.export_button.setPopupMode(QtWidgets.QToolButton.ToolButtonPopupMode.InstantPopup)
-        for button in (self.train_button, self.stop_button, self.export_button):
-            header.addWidget(button)
-        layout.addLayout(header)
+        self.header = EntryHeader("Replay", "Read the log again and replay every rule on it")
+        layout.addLayout(self.header)
+        self.state_label = self.header.state_label
+        self.train_button, self.stop_button = self.header.train_button, self.header.stop_button
         self.source_label = QtWidgets.QLabel()
         self.source_label.setStyleSheet(f"color: {MUTED}")
         self.source_label.setWordWrap(True)
@@ -142,7 +135,7 @@ class LogView(QtWidgets.QFrame):
         self.lines.setWordWrap(True)
         self.lines.setTextInteractionFlags(QtCore.Qt.TextInteractionFlag.TextSelectableByMouse)
         layout.addWidget(self.lines)
-        self.export_button.setMenu(export_menu(self, self.canvas, self.model))
+        self.header.export_button.setMenu(export_menu(self, self.canvas, self.model))
         self.train_button.clicked.connect(lambda: self.train_requested.emit(self, 1.0))
         self.stop_button.clicked.connect(lambda: self.stop_requested.emit(self))
         model.subscribe(self._on_model_changed)
@@ -177,11 +170,9 @@ class LogView(QtWidgets.QFrame):
 
     def _update_state(self) -> None:
         m = self.model
-        self.state_label.setText(m.state_text())
-        bad = m.edited or m.status == "failed"
-        self.state_label.setStyleSheet(f"color: {'#A33A1E' if bad else '#333333'}")
-        self.train_button.setEnabled(m.status != "training")
-        self.stop_button.setEnabled(m.status == "training")
+        self.header.show_state(
+            m.state_text(), m.edited or m.status == "failed", m.status == "training"
+        )
         src = m.source
         member = f", member {src.member}" if src.member is not None else ""
         self.source_label.setText(f"{src.path}{member}")

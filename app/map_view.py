@@ -10,6 +10,7 @@ from PySide6 import QtCore, QtWidgets
 
 from app.axes import LogAxis, PlainAxis, tick_text
 from app.colors import method_color
+from app.entry_header import EntryHeader
 from app.export import export_menu
 from core.analysis import MethodWindows, StabilityMap, sentence, stability_map
 from core.map_model import MapModel
@@ -34,22 +35,15 @@ class MapView(QtWidgets.QFrame):
         )
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(6, 2, 6, 6)
-        header = QtWidgets.QHBoxLayout()
-        self.state_label = QtWidgets.QLabel()
-        header.addWidget(self.state_label, 1)
+        self.header = EntryHeader(
+            "Train", "Train the whole map: every batch size, threshold and seed"
+        )
         self.progress = QtWidgets.QProgressBar()
         self.progress.setMinimumWidth(220)
-        header.addWidget(self.progress)
-        self.train_button = QtWidgets.QPushButton("Train")
-        self.train_button.setToolTip("Train the whole map: every batch size, threshold and seed")
-        self.stop_button = QtWidgets.QPushButton("Stop")
-        header.addWidget(self.train_button)
-        header.addWidget(self.stop_button)
-        self.export_button = QtWidgets.QToolButton()
-        self.export_button.setText("Export")
-        self.export_button.setPopupMode(QtWidgets.QToolButton.ToolButtonPopupMode.InstantPopup)
-        header.addWidget(self.export_button)
-        layout.addLayout(header)
+        self.header.insertWidget(1, self.progress)
+        layout.addLayout(self.header)
+        self.state_label = self.header.state_label
+        self.train_button, self.stop_button = self.header.train_button, self.header.stop_button
         self.sentences = QtWidgets.QLabel()
         self.sentences.setWordWrap(True)
         self.sentences.setTextFormat(QtCore.Qt.TextFormat.RichText)
@@ -57,7 +51,7 @@ class MapView(QtWidgets.QFrame):
         self.canvas = pg.GraphicsLayoutWidget()
         self.canvas.setMinimumHeight(0)
         layout.addWidget(self.canvas, 1)
-        self.export_button.setMenu(export_menu(self, self.canvas, self.model))
+        self.header.export_button.setMenu(export_menu(self, self.canvas, self.model))
         self.train_button.clicked.connect(lambda: self.train_requested.emit(self, 1.0))
         self.stop_button.clicked.connect(lambda: self.stop_requested.emit(self))
         model.subscribe(self._on_model_changed)
@@ -114,11 +108,7 @@ class MapView(QtWidgets.QFrame):
             left = m.seconds_left()
             if left is not None:
                 text += f", about {left:.0f} s left"
-        self.state_label.setText(text)
-        bad = m.edited or m.status == "failed"
-        self.state_label.setStyleSheet(f"color: {'#A33A1E' if bad else '#333333'}")
-        self.train_button.setEnabled(m.status != "training")
-        self.stop_button.setEnabled(m.status == "training")
+        self.header.show_state(text, m.edited or m.status == "failed", m.status == "training")
 
     def _draw(self) -> None:
         self.canvas.clear()
