@@ -49,16 +49,19 @@ def load_preset(text: str, overrides: list[str]) -> Scenario:
 
 
 def command_train(preset: str, overrides: list[str], out: Path | None, trace: bool) -> int:
-    from core.engine import Engine
     from core.fileio import check_out_folder
     from core.member import run_members
-    from core.results import collect, write_run
+    from core.memory import check_train_fits
 
     scenario = load_preset(preset, overrides)
     if trace and out is None:
         raise GradfenceInputError("--trace writes trace.npz and data.npz into --out; add --out.")
     if out is not None:
         check_out_folder(out)
+    check_train_fits(scenario, trace)  # before the data is built: one sentence, not a swap storm
+    from core.engine import Engine
+    from core.results import collect, write_run
+
     engine = Engine(scenario, run_members(scenario), trace=trace)
     progress = Progress(scenario.train.steps, sys.stderr)
     result = collect(engine, lambda record: progress.update(record.step))
@@ -150,6 +153,7 @@ def command_map(args: argparse.Namespace) -> int:
 
 
 def command_check(files: list[Path]) -> int:
+    from core.memory import check_fan_fits, check_map_fits, check_train_fits
     from core.scenario import load_scenario
     from core.study_file import is_study, load_study
 
@@ -160,12 +164,27 @@ def command_check(files: list[Path]) -> int:
                 study = load_study(path)
                 for notice in study.notices:
                     print(f"note: {notice}", file=sys.stderr)
+                for number, entry in enumerate(study.entries, start=1):
+                    if entry.scenario is None:
+                        continue
+                    try:
+                        fits = check_fan_fits if entry.kind == "fan" else check_map_fits
+                        fits(entry.scenario)
+                    except GradfenceInputError as exc:
+                        raise GradfenceInputError(
+                            f"{path}: entry {number} ({entry.title!r}): {exc}"
+                        ) from None
                 print(f"ok: {path} (study {study.title!r}, {len(study.entries)} entries)")
                 continue
             notices: list[str] = []
             scenario = load_scenario(path, notices)
             for notice in notices:
                 print(f"note: {notice}", file=sys.stderr)
+            try:  # a preset that cannot train here is not ok, however valid its keys
+                check_train_fits(scenario)
+                check_map_fits(scenario)
+            except GradfenceInputError as exc:
+                raise GradfenceInputError(f"{path}: {exc}") from None
         except GradfenceInputError as exc:
             failures += 1
             print(f"error: {exc}", file=sys.stderr)

@@ -170,12 +170,10 @@ def run_map(
     chunks = plan(scenario)
     total = sum(len(c.points) for c in chunks)
     warn = warn or (lambda text: None)
-    cap = max(len(c.points) for c in chunks) if chunks else 1
-    biggest = max((c.batch_size for c in chunks), default=scenario.train.batch_size)
-    from core.memory import check_fits, processes_that_fit
+    from core.memory import check_map_fits, map_sizes, processes_that_fit
 
-    check_fits(scenario, cap, biggest, seeds=len(scenario.map.seeds))
-    jobs = processes_that_fit(scenario, cap, biggest, jobs or os.cpu_count() or 1)
+    check_map_fits(scenario)
+    jobs = processes_that_fit(scenario, *map_sizes(scenario), jobs or os.cpu_count() or 1)
 
     def summary(table: Path) -> str:
         rows = read_table(table)
