@@ -90,7 +90,8 @@ def _fan_arrays(model: FanModel) -> dict[str, np.ndarray]:
 def _read_fan(path: Path, model: FanModel) -> dict[int, StackData] | None:
     """The stacks in `path`, None when it holds another scenario's; raises BadCacheFileError."""
     try:
-        with np.load(path, allow_pickle=False) as data:
+        # Opened here, not by np.load, which leaves its file open when the zip does not read.
+        with path.open("rb") as f, np.load(f, allow_pickle=False) as data:
             if "identity" not in data:
                 raise BadCacheFileError("has no identity record")
             if str(data["identity"]) != _identity(model.scenario):
@@ -220,7 +221,7 @@ def holds(folder: Path, model: CachedModel) -> bool:
         return False
     try:
         if isinstance(model, FanModel):
-            with np.load(path, allow_pickle=False) as data:
+            with path.open("rb") as f, np.load(f, allow_pickle=False) as data:
                 return "identity" in data and str(data["identity"]) == _identity(model.scenario)
         document = json.loads(path.read_text(encoding="utf-8"))
         return isinstance(document, dict) and document.get("identity") == _identity(model.scenario)
