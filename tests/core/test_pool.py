@@ -98,12 +98,12 @@ def test_a_chunk_that_kills_its_worker_twice_is_reported_and_the_pool_goes_on() 
             Job(doomed, CHUNK, text, chunks[0].batch_size, chunk=chunks[0]),
             lambda kind, run, batch, payload: messages.append((run, kind, payload)),
         )
-        for _ in range(2):  # the worker, then its replacement while it holds the same chunk
-            victim = worker_pid(pool)
+        for deaths in (1, 2):  # the worker, then its replacement while it holds the same chunk
             time.sleep(0.3)
-            os.kill(victim, signal.SIGKILL)
-            assert wait_for(lambda victim=victim: not alive(victim), HANG)
-            pool.poll()
+            os.kill(worker_pid(pool), signal.SIGKILL)
+            # Until the pool has seen it die: a killed process with threads is a zombie in
+            # /proc before waitpid can reap it, so /proc alone says too early.
+            assert wait_for(lambda n=deaths: pool.poll() >= 0 and pool.replaced == n, HANG)
         collect(pool, lambda: any(kind == "error" for _, kind, _ in messages))
         error = next(payload for _, kind, payload in messages if kind == "error")
         assert "twice" in error and error.count(".") == 1  # one sentence
