@@ -12,6 +12,7 @@ import base64
 import datetime
 import html
 import math
+import os
 import re
 import sys
 from collections.abc import Callable
@@ -300,6 +301,8 @@ def write_handout(
 
     study = Study.open(study_path)  # bad input fails before anything starts
     print_notices(study)
+    # No window is shown, so no display is needed: over SSH, Qt would abort looking for one.
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     application()
     report = progress or TerminalProgress()
     pool = WorkerPool()

@@ -27,15 +27,19 @@ def new_mark() -> str:
     return uuid.uuid4().hex
 
 
-def marked_env(mark: str, **extra: str) -> dict[str, str]:
-    """The environment of a command whose processes carry `mark`."""
-    return {
-        **os.environ,
-        "PYTHONPATH": str(REPO),
-        "QT_QPA_PLATFORM": "offscreen",
-        MARK: mark,
-        **extra,
-    }
+DISPLAY_VARIABLES = ("DISPLAY", "WAYLAND_DISPLAY", "QT_QPA_PLATFORM")
+
+
+def marked_env(mark: str, display: bool = True, **extra: str) -> dict[str, str]:
+    """The environment of a command whose processes carry `mark`; with `display` false, as on
+    a machine without one (over SSH, in CI), else with Qt's offscreen platform."""
+    env = {**os.environ, "PYTHONPATH": str(REPO), MARK: mark, **extra}
+    if display:
+        env.setdefault("QT_QPA_PLATFORM", "offscreen")
+    else:
+        for name in DISPLAY_VARIABLES:
+            env.pop(name, None)
+    return env
 
 
 def gradfence(args: Sequence[str]) -> list[str]:
@@ -44,12 +48,12 @@ def gradfence(args: Sequence[str]) -> list[str]:
 
 
 def start(
-    args: Sequence[str], mark: str, cwd: Path | None = None, **extra: str
+    args: Sequence[str], mark: str, cwd: Path | None = None, display: bool = True, **extra: str
 ) -> subprocess.Popen[str]:
     return subprocess.Popen(
         gradfence(args),
         cwd=cwd,
-        env=marked_env(mark, **extra),
+        env=marked_env(mark, display, **extra),
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
