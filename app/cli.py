@@ -192,7 +192,14 @@ def _dispatch(argv: list[str]) -> int:
     if args.command is None or args.command == "open":
         from app.desktop import launch
 
-        return launch(getattr(args, "study", None))
+        return launch(getattr(args, "study", None))  # the window handles SIGTERM itself
+    from app.cli_commands import sigterm_as_interrupt
+
+    with sigterm_as_interrupt():  # SIGTERM ends a command as Ctrl-C does: workers ended first
+        return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
     if args.command == "shot":
         from app.shot import shot
         from core.fileio import check_out_file

@@ -3,10 +3,15 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import math
+import shlex
+import signal
 import sys
 import textwrap
+import threading
 import time
+from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, TextIO
 
@@ -49,16 +54,19 @@ def load_preset(text: str, overrides: list[str]) -> Scenario:
 
 
 def command_train(preset: str, overrides: list[str], out: Path | None, trace: bool) -> int:
-    from core.engine import Engine
     from core.fileio import check_out_folder
     from core.member import run_members
-    from core.results import collect, write_run
+    from core.memory import check_train_fits
 
     scenario = load_preset(preset, overrides)
     if trace and out is None:
         raise GradfenceInputError("--trace writes trace.npz and data.npz into --out; add --out.")
     if out is not None:
         check_out_folder(out)
+    check_train_fits(scenario, trace)  # before the data is built: one sentence, not a swap storm
+    from core.engine import Engine
+    from core.results import collect, write_run
+
     engine = Engine(scenario, run_members(scenario), trace=trace)
     progress = Progress(scenario.train.steps, sys.stderr)
     result = collect(engine, lambda record: progress.update(record.step))
@@ -75,7 +83,8 @@ def command_map(args: argparse.Namespace) -> int:
 
     from core.analysis import analyse, sentence, window_line, windows_json
     from core.fileio import write_text_atomic
-    from core.map_run import run_map
+    from core.formats import json_ready
+    from core.map_run import MapWorkerError, run_map
     from core.maps import plan
 
     if args.jobs is not None and args.jobs < 1:
@@ -104,38 +113,47 @@ def command_map(args: argparse.Namespace) -> int:
         file=sys.stderr,
     )
     progress = Progress(points, sys.stderr, label="members")
+    resume = resume_command(args, out)
     try:
-        rows = run_map(
-            scenario,
-            out,
-            args.jobs,
-            resume=args.resume,
-            fresh=args.fresh,
-            on_progress=lambda p: progress.update(p.members_done),
-            warn=lambda line: print(f"warning: {line}", file=sys.stderr),
-            cluster=args.cluster,
-            cluster_timeout=args.cluster_timeout,
-        )
+        with sigterm_as_interrupt():
+            rows = run_map(
+                scenario,
+                out,
+                args.jobs,
+                resume=args.resume,
+                fresh=args.fresh,
+                on_progress=lambda p: progress.update(p.members_done),
+                warn=lambda line: print(f"warning: {line}", file=sys.stderr),
+                cluster=args.cluster,
+                cluster_timeout=args.cluster_timeout,
+            )
     except KeyboardInterrupt:
         progress.close()
         print(
-            f"stopped; the finished members are in {out}: continue with "
-            f"`gradfence map {args.preset} --out {out} --resume`.",
+            f"stopped; the finished members are in {out}: continue with `{resume}`.",
             file=sys.stderr,
         )
         return EXIT_INTERNAL
+    except MapWorkerError as exc:
+        progress.close()
+        raise GradfenceInputError(
+            f"{exc.reason}; the finished members are in {out}: continue with `{resume}`."
+        ) from None
     progress.close()
     results = analyse(rows, tolerance)
     from core.profile import norm_profile, profile_sentence, suggest_thresholds
 
-    write_text_atomic(
-        out / "windows.json", json.dumps(windows_json(results, tolerance), indent=2) + "\n"
-    )
+    # JSON has no NaN or infinity: json_ready spells them null and "inf", and allow_nan=False
+    # makes sure nothing else slips through as the invalid NaN token.
+    windows = json_ready(windows_json(results, tolerance))
+    write_text_atomic(out / "windows.json", json.dumps(windows, indent=2, allow_nan=False) + "\n")
     profile = norm_profile(scenario)
     suggestions = suggest_thresholds(scenario)
     profile_json = profile.as_json()
     profile_json["suggestions"] = [s.__dict__ for s in suggestions]
-    write_text_atomic(out / "profile.json", json.dumps(profile_json, indent=2) + "\n")
+    write_text_atomic(
+        out / "profile.json", json.dumps(json_ready(profile_json), indent=2, allow_nan=False) + "\n"
+    )
     for w in results.values():
         print(sentence(w))
         print(window_line(w))
@@ -150,7 +168,38 @@ def command_map(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def resume_command(args: argparse.Namespace, out: Path) -> str:
+    """The command that continues this map where it stopped, ready to paste: the same preset,
+    overrides and cluster (another scenario would be refused), with --resume."""
+    words = ["gradfence", "map", args.preset]
+    for override in args.overrides:
+        words += ["--set", override]
+    words += ["--out", str(out)]
+    if args.cluster is not None:
+        words += ["--cluster", args.cluster]
+    return shlex.join([*words, "--resume"])
+
+
+@contextlib.contextmanager
+def sigterm_as_interrupt() -> Iterator[None]:
+    """SIGTERM (`kill`, a closing session, a scheduler's stop) ends like Ctrl-C: finished work
+    kept, workers ended, the way to go on said; never a process killed with its workers left."""
+
+    def interrupt(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    if threading.current_thread() is not threading.main_thread():
+        yield  # only the main thread may set handlers; a caller's thread keeps its own
+        return
+    previous = signal.signal(signal.SIGTERM, interrupt)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
 def command_check(files: list[Path]) -> int:
+    from core.memory import check_fan_fits, check_map_fits, check_train_fits
     from core.scenario import load_scenario
     from core.study_file import is_study, load_study
 
@@ -161,12 +210,27 @@ def command_check(files: list[Path]) -> int:
                 study = load_study(path)
                 for notice in study.notices:
                     print(f"note: {notice}", file=sys.stderr)
+                for number, entry in enumerate(study.entries, start=1):
+                    if entry.scenario is None:
+                        continue
+                    try:
+                        fits = check_fan_fits if entry.kind == "fan" else check_map_fits
+                        fits(entry.scenario)
+                    except GradfenceInputError as exc:
+                        raise GradfenceInputError(
+                            f"{path}: entry {number} ({entry.title!r}): {exc}"
+                        ) from None
                 print(f"ok: {path} (study {study.title!r}, {len(study.entries)} entries)")
                 continue
             notices: list[str] = []
             scenario = load_scenario(path, notices)
             for notice in notices:
                 print(f"note: {notice}", file=sys.stderr)
+            try:  # a preset that cannot train here is not ok, however valid its keys
+                check_train_fits(scenario)
+                check_map_fits(scenario)
+            except GradfenceInputError as exc:
+                raise GradfenceInputError(f"{path}: {exc}") from None
         except GradfenceInputError as exc:
             failures += 1
             print(f"error: {exc}", file=sys.stderr)

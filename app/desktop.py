@@ -51,9 +51,13 @@ def launch(path: Path | None = None) -> int:
     from app.qt_app import application
 
     app = application()
-    window = open_window(study)
+    ending = _EndOnSignals(app)  # before any worker starts: none may outlive this process
+    window = open_window(study)  # a recovery question may wait here; a signal ends it too
+    ending.window = window
+    if ending.asked:
+        ending.end_now()
+        return 0
     window.pool.start()  # workers import torch in the background; nothing trains until asked
-    _end_cleanly_on_signals(app, window)
     return int(app.exec())
 
 
@@ -69,15 +73,28 @@ def open_window(study: Study) -> MainWindow:
     return window
 
 
-def _end_cleanly_on_signals(app: Any, window: MainWindow) -> None:
-    """SIGTERM and SIGINT: stop the workers and leave the event loop (unsaved edits stay in the
-    recovery copy). Python runs signal handlers between bytecodes, and the window's redraw
-    timer gives it a chance at least 30 times a second."""
+class _EndOnSignals:
+    """SIGTERM and SIGINT: keep unsaved edits in the recovery copy, stop the workers and leave
+    every event loop (a question's too). Python runs signal handlers between bytecodes, and the
+    window's redraw timer gives it a chance at least 30 times a second."""
 
-    def end(signum: int, frame: object) -> None:
-        window.autosave.save_copy()
-        window.shut_down()
-        app.quit()
+    def __init__(self, app: Any) -> None:
+        self.app = app
+        self.window: MainWindow | None = None
+        self.asked = False
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            signal.signal(signum, self.on_signal)
 
-    for signum in (signal.SIGTERM, signal.SIGINT):
-        signal.signal(signum, end)
+    def on_signal(self, signum: int, frame: object) -> None:
+        self.asked = True
+        self.end_now()
+        self.app.quit()
+        from PySide6 import QtCore
+
+        # Queued as well: a signal that lands just before the event loop starts still ends it.
+        QtCore.QTimer.singleShot(0, self.app.quit)
+
+    def end_now(self) -> None:
+        if self.window is not None:
+            self.window.autosave.save_copy()
+            self.window.shut_down()

@@ -12,6 +12,7 @@ import base64
 import datetime
 import html
 import math
+import os
 import re
 import sys
 from collections.abc import Callable
@@ -24,6 +25,7 @@ from app.axes import tick_text
 from app.fan_view import FanView
 from app.log_view import LogView, percent, rule_title, summary_lines
 from app.map_view import MapView
+from app.notices import print_notices
 from app.views import make_view
 from core import __version__
 from core.analysis import sentence
@@ -298,8 +300,9 @@ def write_handout(
     from core.runner import Runner
 
     study = Study.open(study_path)  # bad input fails before anything starts
-    for notice in study.notices:
-        print(f"note: {notice}", file=sys.stderr)
+    print_notices(study)
+    # No window is shown, so no display is needed: over SSH, Qt would abort looking for one.
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     application()
     report = progress or TerminalProgress()
     pool = WorkerPool()

@@ -165,8 +165,8 @@ class MainWindow(QtWidgets.QMainWindow):
         if first is not None:
             self.select_card(first)
         self._update_title()
-        for notice in study.notices:
-            self.show_message(notice)
+        if study.notices:  # all of them at once: one after another, only the last would show
+            self.show_message("  ".join(study.notices), 30_000)
 
     def _on_study_event(self, event: StudyEvent) -> None:
         entry = event.entry
@@ -188,7 +188,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self.column_layout.removeWidget(card)
             self.column_layout.insertWidget(event.index, card)
         elif event.what == "notice":
-            self.show_message(event.detail)
+            self.show_message(event.detail, 30_000)
         elif event.what == "entry" and event.detail == "scenario":
             self._schedule_retrain(entry)
         if event.what in ("inserted", "removed", "moved") or event.detail == "title":

@@ -6,6 +6,7 @@ import os
 import time
 from pathlib import Path
 
+from app.notices import print_notices
 from core.errors import GradfenceInputError
 from core.study import Study
 
@@ -28,6 +29,7 @@ def shot(
     """
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     study = Study.open(path)
+    print_notices(study)
     for number, option in [(entry, "--entry"), *((n, "--collapse") for n in collapse)]:
         if number is not None and not 1 <= number <= len(study):
             raise GradfenceInputError(f"{option} {number}: {path} has entries 1 to {len(study)}.")

@@ -90,7 +90,7 @@ def _fan_arrays(model: FanModel) -> dict[str, np.ndarray]:
 def _read_fan(path: Path, model: FanModel) -> dict[int, StackData] | None:
     """The stacks in `path`, None when it holds another scenario's; raises BadCacheFileError."""
     try:
-        # Opened here, not by np.load, so that a file np.load rejects is closed all the same.
+        # Opened here, not by np.load, which leaves its file open when the zip does not read.
         with path.open("rb") as f, np.load(f, allow_pickle=False) as data:
             if "identity" not in data:
                 raise BadCacheFileError("has no identity record")

@@ -72,10 +72,14 @@ def check_out_file(path: Path, suffixes: tuple[str, ...], what: str, option: str
         raise GradfenceInputError(
             f"{option} {path}: a {what} file ends in {' or '.join(suffixes)}."
         )
+    # The folder is made when the file is written; the first part of it that exists already
+    # must be a folder we may write in, or the write would fail after all the work.
     folder = path.parent if str(path.parent) else Path(".")
-    if folder.exists() and not folder.is_dir():
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    if not folder.is_dir():
         raise GradfenceInputError(f"{option} {path}: {folder} is a file, not a folder.")
-    if folder.exists() and not os.access(folder, os.W_OK | os.X_OK):
+    if not os.access(folder, os.W_OK | os.X_OK):
         raise GradfenceInputError(f"{option} {path}: the folder {folder} is not writable.")
     if path.exists() and not os.access(path, os.W_OK):
         raise GradfenceInputError(f"{option} {path}: the file is not writable.")

@@ -18,14 +18,19 @@ def format_value(value: float, single: bool = False) -> str:
         return "inf" if value > 0 else "-inf"
     if value == int(value) and abs(value) < 1e15:
         return str(int(value))
-    if single:
+    if single and abs(value) <= FLOAT32_MAX:
         return str(np.float32(value))
-    return repr(float(value))
+    return repr(float(value))  # beyond float32's range it was not a float32 result: all digits
+
+
+FLOAT32_MAX = float(np.finfo(np.float32).max)
 
 
 def single(value: float) -> float:
-    """`value` rounded to float32, as a Python float: what a float32 result really knows."""
-    return float(np.float32(value))
+    """`value` rounded to float32, as a Python float: what a float32 result really knows
+    (infinite beyond float32's range, as float32 arithmetic would have made it)."""
+    with np.errstate(over="ignore"):
+        return float(np.float32(value))
 
 
 def parse_value(text: str) -> float:

@@ -31,7 +31,12 @@ class MapProgress:
 
 
 class MapWorkerError(GradfenceInputError):
-    """A chunk failed in a worker (twice, when the worker died); the message says how to go on."""
+    """A chunk failed in a worker (twice, when the worker died); the message says how to go on.
+    `reason` is what happened, for a caller that words the way on itself."""
+
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+        super().__init__(f"{reason}; the finished members are kept: continue with --resume.")
 
 
 def run_map(
@@ -58,12 +63,10 @@ def run_map(
     chunks = plan(scenario)
     total = sum(len(c.points) for c in chunks)
     warn = warn or (lambda text: None)
-    cap = max(len(c.points) for c in chunks) if chunks else 1
-    biggest = max((c.batch_size for c in chunks), default=scenario.train.batch_size)
-    from core.memory import check_fits, processes_that_fit
+    from core.memory import check_map_fits, map_sizes, processes_that_fit
 
-    check_fits(scenario, cap, biggest, seeds=len(scenario.map.seeds))
-    jobs = processes_that_fit(scenario, cap, biggest, jobs or os.cpu_count() or 1)
+    check_map_fits(scenario)
+    jobs = processes_that_fit(scenario, *map_sizes(scenario), jobs or os.cpu_count() or 1)
 
     def summary(table: Path) -> str:
         rows = read_table(table)
@@ -120,18 +123,15 @@ def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[st
     """
     if not chunks:
         return
-    import torch
-
     from core.pool import WorkerPool
     from core.work import CHUNK, Job
 
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)  # like every worker: one thread per process
-    queue = deque(chunks)  # costliest first
     pool = WorkerPool(jobs - 1) if jobs > 1 else None
+    queue = deque(chunks)  # costliest first
     arrived: deque[list[dict[str, Any]]] = deque()
     pending = 0
     failure: list[str] = []
+    threads: int | None = None
 
     def handle(kind: str, run_id: int, batch: int, payload: Any) -> None:
         nonlocal pending
@@ -141,11 +141,17 @@ def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[st
             pending -= 1
         elif kind == "error":
             pending -= 1
-            failure.append(f"batch size {batch}: {str(payload).strip().splitlines()[-1]}")
+            text = str(payload).strip()
+            last = text.splitlines()[-1].rstrip(".") if text else "no message"
+            failure.append(f"a chunk at batch size {batch} failed in a worker: {last}")
 
     try:
         if pool is not None:
-            pool.start()
+            pool.start()  # first: the workers import torch while this process does too
+        import torch
+
+        threads = torch.get_num_threads()
+        torch.set_num_threads(1)  # like every worker: one thread per process
         run_id = pool.new_run_id() if pool is not None else 0
         while queue or pending or arrived:
             while pool is not None and queue and pending < 2 * (jobs - 1):
@@ -156,17 +162,19 @@ def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[st
             while arrived:
                 yield arrived.popleft()
             if failure:
-                raise MapWorkerError(
-                    f"a worker failed on a chunk at {failure[0]}; the finished members are "
-                    "kept: continue with --resume."
-                )
+                raise MapWorkerError(failure[0])
             if queue:
                 yield run_chunk(text, queue.pop())
                 if pool is not None:
                     pool.poll()
             elif pending and pool is not None:
                 pool.wait(0.5)
+        if failure:  # the last chunks may fail after the loop's own check
+            raise MapWorkerError(failure[0])
     finally:
         if pool is not None:
             pool.shutdown()
-        torch.set_num_threads(threads)
+        if threads is not None:
+            import torch
+
+            torch.set_num_threads(threads)

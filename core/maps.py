@@ -168,11 +168,12 @@ def table_csv(rows: list[dict[str, Any]], header: bool) -> str:
 
 
 def _cell(value: Any, single: bool) -> str:
-    """A grid threshold keeps every digit (it names the point); measurements are float32."""
+    """A grid threshold keeps every digit (it names the point), and is empty for a method
+    without one; measurements are float32, with inf and nan spelt out."""
     if isinstance(value, bool):
         return "1" if value else "0"
     if isinstance(value, float):
-        return "" if math.isnan(value) else format_value(value, single=single)
+        return "" if math.isnan(value) and not single else format_value(value, single=single)
     return str(value)
 
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 import itertools
 import math
 import os
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 from core.errors import GradfenceInputError
@@ -55,8 +56,11 @@ def parameter_count(scenario: Scenario) -> int:
     return sum((a + 1) * b for a, b in itertools.pairwise(sizes))
 
 
-def estimate(scenario: Scenario, members: int, batch_size: int, seeds: int = 1) -> MemoryEstimate:
-    """What one process training `members` members at `batch_size` holds at its peak."""
+def estimate(
+    scenario: Scenario, members: int, batch_size: int, seeds: int = 1, trace: bool = False
+) -> MemoryEstimate:
+    """What one process training `members` members at `batch_size` holds at its peak; with
+    `trace`, also every step's example norms (`gradfence train --trace`)."""
     d, t = scenario.data, scenario.train
     dim = 2 if d.task in ("moons", "spirals", "xor") else d.dim
     pool = 0
@@ -65,16 +69,22 @@ def estimate(scenario: Scenario, members: int, batch_size: int, seeds: int = 1) 
     rows = d.n_train + pool + d.n_val
     data = rows * (dim + 1) * (8 + 4) * 2  # numpy float64 and the float32 copy, x and y, twice
     params = parameter_count(scenario)
-    optimizer_copies = 6 if t.optimizer != "sgd" else 5  # theta, grad, states, saved copies
+    # theta, its gradient, the optimizer's states and the saved copies (initial weights, the
+    # step's start): measured, about seven per parameter under Adam, six under SGD.
+    optimizer_copies = 7 if t.optimizer != "sgd" else 6
     stack = members * params * 4 * optimizer_copies
     hidden = scenario.model.hidden if scenario.model.kind == "mlp" else ()
     width = dim + sum(hidden) + (d.classes if scenario.is_classification else 1)
-    # Forward and backward keep a, z and dz per layer; logged steps split them clean/outlier.
-    step = members * batch_size * width * 4 * 8
-    step += members * params * 4 * 6  # the flat gradients: clipped, and four parts when logged
+    # Forward and backward keep a, z and dz per layer; logged steps split them clean/outlier;
+    # the clipped products and the batch gathered from the data add about as much again (ten
+    # float32 copies per unit: measured peaks reach nine at a batch of 65536).
+    step = members * batch_size * width * 4 * 10
+    step += members * params * 4 * 7  # flat gradients: clipped, four parts when logged, noise
     evaluation = members * d.n_val * width * 4 * 2
-    plan = seeds * t.steps * batch_size * 8
-    return MemoryEstimate(data, stack, step + evaluation + plan)
+    # The batch plan: int64 rows and their outlier flags per seed, each stacked once more.
+    plan = seeds * t.steps * batch_size * (8 + 1 + 8 + 1)
+    kept = members * t.steps * batch_size * 8 if trace else 0  # float64 norms, every step
+    return MemoryEstimate(data, stack, step + evaluation + plan + kept)
 
 
 def available_bytes() -> int | None:
@@ -93,20 +103,65 @@ def available_bytes() -> int | None:
 
 
 def check_fits(
-    scenario: Scenario, members: int, batch_size: int, processes: int = 1, seeds: int = 1
+    scenario: Scenario,
+    members: int,
+    batch_size: int,
+    processes: int = 1,
+    seeds: int = 1,
+    trace: bool = False,
+    what: str = "training",
 ) -> MemoryEstimate:
-    """Raise one sentence when `processes` processes of this size do not fit in free memory."""
-    need = estimate(scenario, members, batch_size, seeds)
+    """Raise one sentence when `processes` processes of this size do not fit in free memory;
+    `what` names the work in it."""
+    need = estimate(scenario, members, batch_size, seeds, trace)
     free = available_bytes()
     if free is not None and need.total * processes > free:
         many = f"{processes} processes of " if processes > 1 else ""
+        fewer = " (or --jobs)" if processes > 1 else ""
         raise GradfenceInputError(
-            f"{scenario.name}: training needs about {many}{gigabytes(need.total)} "
+            f"{scenario.name}: {what} needs about {many}{gigabytes(need.total)} "
             f"({need.describe()}) at batch size {batch_size} with {members} members, and "
             f"{gigabytes(free)} is free; lower data.n_train, model.hidden, the batch size or "
-            "the number of members (or --jobs)."
+            f"the number of members{fewer}."
         )
     return need
+
+
+def check_train_fits(scenario: Scenario, trace: bool = False) -> MemoryEstimate:
+    """`gradfence train`: one process, one member per [[clip]] table at train.batch_size."""
+    return check_fits(scenario, len(scenario.clip), scenario.train.batch_size, trace=trace)
+
+
+def map_sizes(scenario: Scenario) -> tuple[int, int]:
+    """The members of a map's largest chunk and its largest batch size: its costliest process
+    (taken together, so the estimate errs high)."""
+    from core.maps import plan
+
+    chunks = plan(scenario)
+    members = max((len(c.points) for c in chunks), default=1)
+    biggest = max((c.batch_size for c in chunks), default=scenario.train.batch_size)
+    return members, biggest
+
+
+def check_map_fits(scenario: Scenario) -> MemoryEstimate:
+    """A map: its costliest chunk in one process."""
+    members, biggest = map_sizes(scenario)
+    seeds = len(scenario.map.seeds)
+    return check_fits(scenario, members, biggest, seeds=seeds, what="training a map chunk")
+
+
+def check_stacks_fit(scenario: Scenario, stacks: Iterable[tuple[int, int]]) -> None:
+    """A fan's stacks, as (members, batch size): each must fit in one process."""
+    for members, batch_size in sorted(set(stacks), reverse=True):
+        check_fits(scenario, members, batch_size, what="training a fan's stack")
+
+
+def check_fan_fits(scenario: Scenario) -> None:
+    """A fan trained whole: every member at each batch size of its ladder."""
+    from core.fan import batch_ladder, fan_members
+
+    members = len(fan_members(scenario))
+    check_stacks_fit(scenario, [(members, b) for b in batch_ladder(scenario)])
 
 
 def processes_that_fit(scenario: Scenario, members: int, batch_size: int, wanted: int) -> int:

@@ -12,7 +12,14 @@ loop) delivers what workers send to the job's handler. Stopping a run is a messa
 A window's workers run at a lower priority (`nice`), so that they may use every core while the
 window, at normal priority, still answers at once. A worker that dies is replaced and its
 unfinished jobs go back to the queue once; a job that kills a worker twice is reported as an
-error. Workers end when asked, when their parent is gone, and within `shutdown`'s timeout.
+error. Workers end when asked, within `shutdown`'s timeout in any case, and at once when their
+parent is gone (a thread in each worker watches for that, so a killed parent leaves nothing
+behind).
+
+Each worker writes to a pipe of its own. A worker killed in the middle of a message then tears
+only its own pipe, which is dropped with it; one queue shared by all workers would be left with a
+torn message, or with its write lock held by the dead process, and every other worker would
+block on it for ever.
 """
 
 from __future__ import annotations
@@ -21,10 +28,14 @@ import contextlib
 import heapq
 import itertools
 import multiprocessing
+import multiprocessing.connection
 import os
 import queue
 import signal
+import sys
+import threading
 import time
+import traceback
 from collections import deque
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -32,6 +43,9 @@ from typing import Any
 from core.work import Handler, Job, perform
 
 DONE_KINDS = ("done", "stopped", "error", "skipped")
+# A job's result, sent once: a retried job whose first worker died after sending it sends it
+# again, and a second copy (a map chunk's rows twice, say) must not reach the handler.
+RESULT_KINDS = ("rows", "profile", "advice")
 PARENT_CHECK = 0.5  # seconds between a waiting worker's checks that its parent still lives
 DEPTH = 2  # jobs given to a worker at a time: one training, one waiting
 DESKTOP_NICE = 10  # the window's workers yield the cores to the window itself
@@ -61,20 +75,63 @@ def warm_up() -> None:
         pass
 
 
+def _end_with_parent() -> None:
+    """End this process the moment its parent is gone, whatever it is doing (a chunk can take
+    minutes, and an orphan would hold its memory and the resource tracker all that time)."""
+    parent = multiprocessing.parent_process()
+    if parent is None:
+        return
+
+    def watch() -> None:
+        multiprocessing.connection.wait([parent.sentinel])
+        os._exit(0)
+
+    threading.Thread(target=watch, name="gradfence-parent-watch", daemon=True).start()
+
+
 def worker_main(inbox: Any, outbox: Any, nice: int = 0) -> None:
-    """The loop of one worker process: perform jobs, watch for stops between record batches."""
+    """One worker process: perform jobs until told to quit. `outbox` is the sending end of
+    this worker's own pipe."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+    _end_with_parent()
     if nice:
         with contextlib.suppress(OSError, AttributeError):
             os.nice(nice)
+    try:
+        _serve(inbox, outbox)
+    except BaseException:
+        traceback.print_exc()
+        _leave(1)
+    # Everything sent is in the pipe already (sends are synchronous), so the interpreter's
+    # teardown has nothing to do but unload torch, which takes about 0.6 s: skip it.
+    _leave(0)
+
+
+def _leave(code: int) -> None:
+    with contextlib.suppress(OSError, ValueError):
+        sys.stdout.flush()
+        sys.stderr.flush()
+    os._exit(code)
+
+
+def _serve(inbox: Any, outbox: Any) -> None:
+    """The loop of a worker: perform jobs, watch for stops between record batches."""
+
+    def post(message: tuple[str, int, int, int, Any]) -> None:
+        try:
+            outbox.send(message)
+        except OSError:  # the parent closed its end: it is shutting down, nothing to tell
+            _leave(0)
+
     import torch
 
     torch.set_num_threads(1)
     warm_up()
+
     parent = multiprocessing.parent_process()
     stopped: set[int] = set()
     held: deque[Job] = deque()
-    outbox.put(("ready", 0, 0, 0, os.getpid()))
+    post(("ready", 0, 0, 0, os.getpid()))
 
     def read_control(block: bool) -> bool:
         """Read what is waiting (stops, quit, jobs to hold); False when it is time to end."""
@@ -98,11 +155,11 @@ def worker_main(inbox: Any, outbox: Any, nice: int = 0) -> None:
             continue
         job = held.popleft()
         if job.run_id in stopped:
-            outbox.put(("skipped", job.job_id, job.run_id, job.batch_size, None))
+            post(("skipped", job.job_id, job.run_id, job.batch_size, None))
             continue
 
         def send(kind: str, payload: Any, job: Job = job) -> None:
-            outbox.put((kind, job.job_id, job.run_id, job.batch_size, payload))
+            post((kind, job.job_id, job.run_id, job.batch_size, payload))
 
         ending = False
 
@@ -120,9 +177,18 @@ def worker_main(inbox: Any, outbox: Any, nice: int = 0) -> None:
 @dataclass
 class _Worker:
     process: Any
-    inbox: Any
+    inbox: Any  # a queue: the parent's sends never block, however busy the worker is
+    outbox: Any  # the receiving end of the worker's own pipe
     jobs: list[Job] = field(default_factory=list)  # sent and not finished, in order
     ready: bool = False
+    open: bool = True  # False once its pipe reached its end (the worker is gone)
+
+    def close(self) -> None:
+        with contextlib.suppress(OSError, ValueError):
+            self.inbox.cancel_join_thread()  # never wait to flush into a pipe nobody reads
+            self.inbox.close()
+        with contextlib.suppress(OSError):
+            self.outbox.close()
 
 
 class WorkerPool:
@@ -133,11 +199,11 @@ class WorkerPool:
         self.size = size or max(1, (os.cpu_count() or 2) - 1)
         self.nice = nice
         self._context = multiprocessing.get_context("spawn")
-        self._outbox: Any = None
-        self._workers: list[_Worker] = []
-        self._handlers: dict[int, Handler] = {}
         self._queue: list[tuple[int, int, Job]] = []  # (priority, order, job): a heap
         self._order = itertools.count()
+        self._workers: list[_Worker] = []
+        self._delivered: set[int] = set()  # job ids whose result reached their handler
+        self._handlers: dict[int, Handler] = {}
         self._job_ids = itertools.count(1)
         self._run_ids = itertools.count(1)
         self.busy: dict[int, int] = {}  # run_id -> jobs not finished
@@ -161,19 +227,25 @@ class WorkerPool:
         if self._workers:
             return
         self._closing = False
-        self._outbox = self._context.Queue()
-        self._workers = [self._spawn() for _ in range(self.size)]
+        for _ in range(self.size):
+            self._workers.append(self._spawn())
 
     def _spawn(self) -> _Worker:
         inbox = self._context.Queue()
+        receiving, sending = self._context.Pipe(duplex=False)
         process = self._context.Process(
             target=worker_main,
-            args=(inbox, self._outbox, self.nice),
+            args=(inbox, sending, self.nice),
             daemon=True,
             name="gradfence-worker",
         )
-        process.start()
-        return _Worker(process, inbox)
+        try:
+            process.start()
+        finally:
+            # Only the worker may hold the sending end: when it dies, the pipe then ends, and a
+            # message it tore reads as an error instead of a wait for bytes that never come.
+            sending.close()
+        return _Worker(process, inbox, receiving)
 
     def shutdown(self, timeout: float = 2.0) -> None:
         """End every worker within `timeout` seconds (those that do not finish are killed)."""
@@ -189,11 +261,9 @@ class WorkerPool:
             if w.process.is_alive():
                 w.process.kill()
                 w.process.join(timeout / 2)
-        for q in [*(w.inbox for w in self._workers), self._outbox]:
-            if q is not None:
-                q.cancel_join_thread()  # never wait to flush into a pipe nobody reads
-                q.close()
-        self._workers, self._outbox = [], None
+        for w in self._workers:
+            w.close()
+        self._workers = []
         self.busy.clear()
 
     # -- jobs ---------------------------------------------------------------------------------
@@ -212,7 +282,7 @@ class WorkerPool:
     def _dispatch(self) -> None:
         """Give waiting jobs, most urgent first, to the workers that have room."""
         for worker in self._workers:
-            while self._queue and len(worker.jobs) < DEPTH:
+            while self._queue and len(worker.jobs) < DEPTH and worker.open:
                 _, _, job = heapq.heappop(self._queue)
                 if job.run_id not in self.busy:
                     continue  # stopped while it waited
@@ -231,29 +301,42 @@ class WorkerPool:
         if not self._workers:
             return 0
         count = 0
-        while count < limit:
-            try:
-                message = self._outbox.get_nowait()
-            except queue.Empty:
-                break
-            self._deliver(message)
-            count += 1
+        progress = True
+        while count < limit and progress:
+            progress = False
+            for w in list(self._workers):
+                if count >= limit or not w.open:
+                    continue
+                message = self._receive(w)
+                if message is None:
+                    continue
+                self._deliver(message)
+                count += 1
+                progress = True
         self._replace_dead()
         self._dispatch()
         return count
 
+    def _receive(self, w: _Worker) -> tuple[str, int, int, int, Any] | None:
+        """The next message of one worker, None when there is none (or its pipe ended)."""
+        try:
+            if not w.outbox.poll():
+                return None
+            message: tuple[str, int, int, int, Any] = w.outbox.recv()
+        except (EOFError, OSError):  # the worker is gone, perhaps in the middle of a message
+            w.open = False
+            return None
+        return message
+
     def wait(self, timeout: float) -> int:
-        """Block until a message arrives (or `timeout` passes), then deliver what is waiting."""
+        """Block until a message arrives or a worker ends (or `timeout` passes), then deliver
+        what is waiting."""
         if not self._workers:
             return 0
-        try:
-            message = self._outbox.get(timeout=timeout)
-        except queue.Empty:
-            self._replace_dead()
-            self._dispatch()
-            return 0
-        self._deliver(message)
-        return 1 + self.poll()
+        waiting = [w.outbox for w in self._workers if w.open]
+        waiting += [w.process.sentinel for w in self._workers]
+        multiprocessing.connection.wait(waiting, timeout)
+        return self.poll()
 
     def _deliver(self, message: tuple[str, int, int, int, Any]) -> None:
         kind, job_id, run_id, batch, payload = message
@@ -262,6 +345,10 @@ class WorkerPool:
                 if w.process.pid == payload:
                     w.ready = True
             return
+        if kind in RESULT_KINDS:
+            if job_id in self._delivered:
+                return  # a retried job's second copy of a result already delivered
+            self._delivered.add(job_id)
         if kind == "records" and payload[1]:
             # Training steps covered (each stack counts its own steps): the status bar's rate.
             last = payload[1][-1].step
@@ -286,9 +373,13 @@ class WorkerPool:
         for index, w in enumerate(self._workers):
             if w.process.is_alive():
                 continue
+            while w.open:  # what it sent before it died ("done", say) still counts
+                message = self._receive(w)
+                if message is None:
+                    break
+                self._deliver(message)
             self.replaced += 1
-            w.inbox.cancel_join_thread()
-            w.inbox.close()
+            w.close()
             self._workers[index] = self._spawn()
             for job in w.jobs:
                 if job.run_id not in self.busy:

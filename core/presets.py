@@ -13,8 +13,11 @@ from core.userdata import data_home
 
 
 def shipped_dir() -> Path:
-    """The scenarios/ folder of this checkout."""
-    return Path(__file__).resolve().parent.parent / "scenarios"
+    """The shipped presets: core/scenarios in an installed wheel (pyproject.toml puts them
+    there), else the scenarios/ folder at the top of this checkout."""
+    here = Path(__file__).resolve().parent
+    installed = here / "scenarios"
+    return installed if installed.is_dir() else here.parent / "scenarios"
 
 
 def user_dir() -> Path:

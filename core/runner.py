@@ -15,10 +15,12 @@ from collections.abc import Sequence
 from typing import Any, Protocol
 
 from core.entry_model import TRAINING, WorkedEntry
+from core.errors import GradfenceInputError
 from core.fan import fan_factors, fan_members
 from core.fan_model import FanModel
 from core.log_model import LogModel
 from core.map_model import MapModel
+from core.memory import check_map_fits, check_stacks_fit
 from core.scenario import dumps_scenario
 from core.study import Study, StudyEvent
 from core.work import CHUNK, FAN, FAR, LOG, LONG, NEAR, PROFILE, URGENT, Handler, Job
@@ -91,6 +93,8 @@ class Runner:
             text = dumps_scenario(entry.scenario)
             entry.begin(run_id)
             jobs = fan_jobs(entry, focus)
+            if not self._fits(entry, run_id, [(len(c), b) for b, c in jobs]):
+                return
             first = len(entry.batch_sizes) if focus is not None and len(jobs) > 1 else 0
             for index, (batch, columns) in enumerate(jobs):
                 urgency = NEAR if index < first else FAR
@@ -98,6 +102,8 @@ class Runner:
         elif isinstance(entry, MapModel):
             text = dumps_scenario(entry.scenario)
             chunks = entry.begin(run_id)
+            if not self._fits(entry, run_id):
+                return
             self.pool.submit(Job(run_id, PROFILE, text, priority=LONG), handler)
             for chunk in chunks:
                 job = Job(run_id, CHUNK, text, chunk.batch_size, chunk=chunk, priority=LONG)
@@ -111,6 +117,21 @@ class Runner:
             self._batch = []
         self._batch = [e for e in self._batch if e is not entry] + [entry]
         self._started[id(entry)] = time.monotonic()
+
+    def _fits(
+        self, entry: FanModel | MapModel, run_id: int, stacks: list[tuple[int, int]] | None = None
+    ) -> bool:
+        """Whether the entry's largest stack fits in free memory; if not, the entry fails now,
+        with the sentence that says how much it needs, instead of a worker dying on it."""
+        try:
+            if stacks is None:
+                check_map_fits(entry.scenario)
+            else:
+                check_stacks_fit(entry.scenario, stacks)
+        except GradfenceInputError as exc:
+            entry.fail(run_id, str(exc))
+            return False
+        return True
 
     def train_all(self, entries: Sequence[WorkedEntry] | None = None) -> list[WorkedEntry]:
         """Train every entry given (default: every entry of the study that trains)."""

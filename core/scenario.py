@@ -46,6 +46,9 @@ RULE_OPTIONS = {
 }
 # A threshold (or grid threshold) outside this range is a typo, not an experiment.
 THRESHOLD_RANGE = (1e-9, 1e9)
+# Deeper than this is no longer a small synthetic problem: the stack's memory and a step's time
+# grow with every layer, and a list written by mistake (a width per example) would run for ever.
+MAX_HIDDEN_LAYERS = 8
 
 
 def method_ids() -> tuple[str, ...]:
@@ -152,7 +155,11 @@ class ModelConfig:
         "mlp", "linear: one layer; mlp: hidden layers.", label="Model", choices=("linear", "mlp")
     )
     hidden: tuple[int, ...] = option(
-        (64, 64), "Widths of the hidden layers (mlp).", label="Hidden layer widths", lo=1, hi=4096
+        (64, 64),
+        "Widths of the hidden layers (mlp), at most 8 layers.",
+        label="Hidden layer widths",
+        lo=1,
+        hi=4096,
     )
     activation: str = option(
         "tanh", "Hidden activation.", label="Activation", choices=("tanh", "relu", "gelu")
@@ -694,6 +701,11 @@ def _check_consistency(s: Scenario, reader: Reader, path: str) -> None:
     def p(key: str) -> str:
         return _join(path, key)
 
+    if len(s.model.hidden) > MAX_HIDDEN_LAYERS:
+        reader.fail(
+            p("model.hidden"),
+            f"lists {len(s.model.hidden)} hidden layers; at most {MAX_HIDDEN_LAYERS} are allowed.",
+        )
     if s.data.task in PLANAR_TASKS and s.data.dim != 2:
         reader.fail(
             p("data.dim"),

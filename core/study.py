@@ -88,6 +88,7 @@ class Study:
         self._listeners: list[StudyListener] = []
         self._entry_listeners: dict[int, Callable[[str], None]] = {}
         self.notices: list[str] = list(notices)
+        self.file_notices = tuple(notices)  # from reading the file (notes), not about results
         for entry in entries:
             self._attach(entry, len(self._entries))
         self._saved_text = self.text() if path is not None or not entries else ""

@@ -40,3 +40,32 @@ def no_leaked_workers() -> Iterator[None]:
         time.sleep(0.05)
     names = [t.name for t in threads] + [f"process {p.pid}" for p in children]
     pytest.fail(f"test left running: {', '.join(names)}")
+
+
+@pytest.fixture
+def mark() -> Iterator[str]:
+    """A mark for the environment of the processes a test starts (tests/os_processes.py); any
+    still running at the end are killed, so a failing test leaves nothing behind either."""
+    from tests.os_processes import kill_all, new_mark
+
+    value = new_mark()
+    yield value
+    kill_all(value)
+
+
+@pytest.fixture
+def shared_tmp() -> Iterator[Path]:
+    """A temporary folder another user may enter (pytest's own is private to this one), for
+    tests that act without privileges (tests/os_processes.py without_privileges)."""
+    import shutil
+    import tempfile
+
+    folder = Path(tempfile.mkdtemp(prefix="gradfence-test-"))
+    folder.chmod(0o755)
+    try:
+        yield folder
+    finally:
+        for path in [folder, *folder.rglob("*")]:
+            if path.is_dir() and not path.is_symlink():
+                path.chmod(0o755)
+        shutil.rmtree(folder)

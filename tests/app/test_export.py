@@ -49,3 +49,32 @@ def test_a_fan_exports_its_members_as_csv(qtbot: QtBot, window: MainWindow, tmp_
         np.array([r["val_loss"] for r in mine], dtype=np.float32),
         stacks[batch].values["val_loss"][:, member].astype(np.float32),
     )
+
+
+def test_a_fan_with_infinite_norms_exports_them_as_inf(tmp_path: Path) -> None:
+    # The previous version's writer crashed (OverflowError) on an infinite value; records with
+    # infinite inputs (outlier kind "nonfinite") give infinite example norms.
+    import tomllib
+
+    from core.fan_model import FanModel
+    from core.runner import Runner
+    from core.scenario import parse_scenario
+    from core.study import Study
+    from core.work import InlinePool
+    from tests.tiny_presets import TINY_FAN
+
+    text = TINY_FAN.replace('kind = "target-shift"', 'kind = "nonfinite"\ncount = 1')
+    fan = FanModel("Corrupt records", parse_scenario(tomllib.loads(text)))
+    study = Study(entries=[fan])
+    pool = InlinePool()
+    Runner(study, pool).train(fan)
+    while not pool.idle:
+        pool.poll()
+    assert fan.status == TRAINED
+    path = tmp_path / "fan.csv"
+    export_csv(fan, path)
+    with path.open(newline="") as f:
+        rows = list(csv.DictReader(f))
+    text_columns = {"method", "label", "threshold"}
+    values = [float(v) for r in rows for k, v in r.items() if k not in text_columns]
+    assert np.isinf(values).any()  # read back by float() as the infinities they are

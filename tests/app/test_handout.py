@@ -6,8 +6,10 @@ import base64
 import html
 import os
 import shutil
+import signal
 import subprocess
 import sys
+import time
 import tomllib
 from html.parser import HTMLParser
 from pathlib import Path
@@ -163,3 +165,63 @@ def test_the_handout_is_built_from_the_study_and_never_makes_a_main_window(
     parsed = check_self_contained(out.read_text(encoding="utf-8"), images=1)
     assert len(parsed.pre) == 1
     assert "MainWindow" not in seen and "FanView" in seen  # the fan's view, made on its own
+
+
+def handout_study(folder: Path, steps: int) -> Path:
+    from tests.tiny_presets import TINY_FAN, study_text, tiny_map_text
+
+    (folder / "fan.toml").write_text(TINY_FAN)
+    (folder / "map.toml").write_text(tiny_map_text(steps=steps))
+    path = folder / "handout.study.toml"
+    path.write_text(study_text(("fan", "Fan", "fan.toml"), ("map", "Map", "map.toml")))
+    return path
+
+
+@pytest.mark.slow
+def test_the_handout_exits_soon_after_its_file_with_nothing_left_running(
+    tmp_path: Path, mark: str
+) -> None:
+    # The previous version's handout could hang after its file in the pool's shutdown; and
+    # without a display (over SSH) Qt aborted it (exit 134) looking for one.
+    from tests.os_processes import gone, start
+
+    out = tmp_path / "page.html"
+    args = ["handout", str(handout_study(tmp_path, 60)), "--out", str(out)]
+    process = start(args, mark, display=False)
+    try:
+        deadline = time.monotonic() + 300
+        while not out.exists() and process.poll() is None and time.monotonic() < deadline:
+            time.sleep(0.02)
+        assert out.exists()
+        written = time.monotonic()
+        _, err = process.communicate(timeout=10)  # the bound
+    finally:
+        process.kill()
+        process.communicate()
+    assert time.monotonic() - written < 10.0
+    assert process.returncode == 0, err
+    assert gone(mark, 10.0) == []
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
+def test_a_handout_stopped_while_it_trains_ends_its_workers(
+    signum: int, tmp_path: Path, mark: str
+) -> None:
+    # Stopped with work queued, the previous version left its workers behind (SIGTERM) or
+    # hung in the pool's shutdown.
+    from tests.os_processes import gone, start, wait_for, workers_of
+
+    out = tmp_path / "page.html"
+    process = start(["handout", str(handout_study(tmp_path, 5000)), "--out", str(out)], mark)
+    try:
+        assert wait_for(lambda: workers_of(process.pid), 120)
+        time.sleep(3.0)  # the workers train now
+        process.send_signal(signum)
+        _, err = process.communicate(timeout=10)  # the bound
+    finally:
+        process.kill()
+        process.communicate()
+    assert process.returncode == 1 and "stopped." in err and "Traceback" not in err
+    assert not out.exists()
+    assert gone(mark, 10.0) == []
