@@ -493,7 +493,14 @@ class Engine:
         self.theta = ParamLayout.flatten(start)
         self.params = self.layout.views(self.theta)
         self.initial = [p.clone() for p in start]
-        self.optimizer = _make_optimizer(scenario, self.theta, self.lr)
+        # torch.optim steps blocks of consecutive rows of theta (views). A member that may skip a
+        # step has a block of its own: on a skipped step its block gets no gradient, and torch.optim
+        # leaves a parameter without one untouched, its moments and its step count (Adam's bias
+        # correction) included. The other members share blocks, so their update stays batched.
+        skips = [m.clip.on_spike == "skip" for m in members]
+        self.blocks = _blocks(skips)
+        self.block_params = [self.theta[a:b] for a, b in self.blocks]
+        self.optimizer = _make_optimizer(scenario, self.block_params, self.lr)
         self.grad_pass = StackPass(
             self.arch, members, train.loss_reduction, scenario.model.exclude_head, dtype
         )
@@ -570,22 +577,44 @@ class Engine:
 
     def _apply(self, grads: torch.Tensor, frozen: torch.Tensor | None) -> None:
         """One optimizer step; frozen members (diverged or skipping) keep parameters and state."""
-        theta = self.theta
         if frozen is None or not bool(frozen.any()):
-            theta.grad = grads
+            for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+                param.grad = grads[a:b]
             self.optimizer.step()
             return
-        keep = frozen.unsqueeze(1)
-        theta.grad = torch.where(keep, 0.0, grads)
-        saved = theta.detach().clone()
-        state = self.optimizer.state[theta]
-        saved_state = {k: v.clone() for k, v in state.items() if _stacked(v, theta)}
+        rows = frozen.tolist()
+        partial = []
+        for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+            mine = rows[a:b]
+            if all(mine):  # a whole block frozen: torch.optim skips it, state and all
+                param.grad = None
+            elif any(mine):  # diverged members among live ones: step, then put their rows back
+                keep = frozen[a:b].unsqueeze(1)
+                param.grad = torch.where(keep, 0.0, grads[a:b])
+                state = self.optimizer.state[param]
+                saved = {k: v.clone() for k, v in state.items() if _stacked(v, param)}
+                partial.append((param, keep, param.detach().clone(), saved))
+            else:
+                param.grad = grads[a:b]
         self.optimizer.step()
-        theta.data.copy_(torch.where(keep, saved, theta.data))  # in place: the views stay valid
-        for key, value in state.items():
-            if _stacked(value, theta):
-                old = saved_state.get(key, torch.zeros_like(value))
-                value.copy_(torch.where(keep, old, value))
+        for param, keep, saved_rows, saved_state in partial:
+            param.copy_(torch.where(keep, saved_rows, param))  # in place: the views stay valid
+            for key, value in self.optimizer.state[param].items():
+                if _stacked(value, param):
+                    old = saved_state.get(key, torch.zeros_like(value))
+                    value.copy_(torch.where(keep, old, value))
+
+    def optimizer_state(self, member: int) -> dict[str, torch.Tensor]:
+        """One member's optimizer state: its rows of the moments, and its block's step count."""
+        for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+            if a <= member < b:
+                state = self.optimizer.state[param]
+                return {
+                    k: v[member - a] if _stacked(v, param) else v
+                    for k, v in state.items()
+                    if isinstance(v, torch.Tensor)
+                }
+        raise IndexError(f"no member {member} in a stack of {len(self.members)}")
 
     def _record(
         self,
@@ -690,13 +719,38 @@ def _lr_factor(scaling: str, batch: int, reference: int) -> float:
     return 1.0
 
 
-def _make_optimizer(scenario: Scenario, theta: torch.Tensor, lr: float) -> torch.optim.Optimizer:
+def _blocks(skips: list[bool]) -> list[tuple[int, int]]:
+    """Row ranges [a, b) of theta that step together: each skipping member alone, the runs of
+    members in between as one block each."""
+    blocks: list[tuple[int, int]] = []
+    start = 0
+    for i, skip in enumerate(skips):
+        if skip:
+            if start < i:
+                blocks.append((start, i))
+            blocks.append((i, i + 1))
+            start = i + 1
+    if start < len(skips):
+        blocks.append((start, len(skips)))
+    return blocks
+
+
+def _make_optimizer(
+    scenario: Scenario, params: list[torch.Tensor], lr: float
+) -> torch.optim.Optimizer:
     t = scenario.train
-    # All of these are element-wise, so one optimizer over the stacked rows is exact per member.
+    # All of these are element-wise, so stepping stacked rows is exact per member. The
+    # single-tensor code path (foreach=False) computes each element the same way whatever the
+    # block, so a member's numbers do not depend on how the stack is cut into blocks.
     if t.optimizer == "sgd":
         return torch.optim.SGD(
-            [theta], lr=lr, momentum=t.momentum, nesterov=t.nesterov, weight_decay=t.weight_decay
+            params,
+            lr=lr,
+            momentum=t.momentum,
+            nesterov=t.nesterov,
+            weight_decay=t.weight_decay,
+            foreach=False,
         )
     if t.optimizer == "adam":
-        return torch.optim.Adam([theta], lr=lr, weight_decay=t.weight_decay)
-    return torch.optim.AdamW([theta], lr=lr, weight_decay=t.weight_decay)
+        return torch.optim.Adam(params, lr=lr, weight_decay=t.weight_decay, foreach=False)
+    return torch.optim.AdamW(params, lr=lr, weight_decay=t.weight_decay, foreach=False)
