@@ -225,6 +225,7 @@ class StackPass:
         rows_w: list[torch.Tensor] | None = None
         bias_w: list[torch.Tensor] | None = None
         batch_groups = []
+        applied: list[tuple[_Group, torch.Tensor]] = []  # each group's level on this step
         for g in self.groups:
             if not g.spec.per_example:
                 batch_groups.append(g)
@@ -244,6 +245,7 @@ class StackPass:
             )
             watched, levels = g.put(watched, seen), g.put(levels, level)
             share = g.put(share, weights.clipped_share)
+            applied.append((g, level))
             for layer in range(arch.layers):
                 rows = weights.rows[layer]
                 rows_w[layer] = g.put(
@@ -251,7 +253,10 @@ class StackPass:
                 )
                 bias_w[layer] = g.put(bias_w[layer], weights.bias[layer])
 
-        flat, parts = self._weighted_sums(inputs, dz, rows_w, bias_w, outlier, detail)
+        # The applied gradient is the same sum whether the step is logged or not, so logging
+        # never changes a trajectory; logged steps add the clean and outlier parts beside it.
+        flat = self._gradient_sum(inputs, dz, rows_w, bias_w)
+        parts = self._split_sums(inputs, dz, rows_w, bias_w, outlier) if detail else None
 
         coef_all = torch.ones_like(flat) if detail else None
         for g in batch_groups:
@@ -261,6 +266,7 @@ class StackPass:
                 unclipped = torch.full_like(g.thresholds, math.inf)
                 level = g.levels(self._batch_coefs(g, sub, params, unclipped)[1])
             coef, seen, clipped = self._batch_coefs(g, sub, params, level)
+            applied.append((g, level))
             watched, levels, share = (
                 g.put(watched, seen),
                 g.put(levels, level),
@@ -272,7 +278,11 @@ class StackPass:
 
         detail_stats = None
         if parts is not None and coef_all is not None and sq is not None:
-            detail_stats = self._detail(flat, parts, coef_all, sq, outlier)
+            assert norms is not None
+            without = self._without_outliers(
+                inputs, dz, norms, params, outlier, parts[2], applied, reduce
+            )
+            detail_stats = self._detail(flat, parts, coef_all, sq, outlier, without)
 
         if self.noisy:
             flat = flat.clone()
@@ -336,24 +346,21 @@ class StackPass:
         result: clipping.BatchResult = g.spec.function()(context, level)
         return result
 
-    def _weighted_sums(
+    def _split_sums(
         self,
         inputs: list[torch.Tensor],
         dz: list[torch.Tensor],
         rows_w: list[torch.Tensor] | None,
         bias_w: list[torch.Tensor] | None,
         outlier: torch.Tensor,
-        detail: bool,
-    ) -> tuple[torch.Tensor, list[torch.Tensor] | None]:
-        """The weighted batch gradient (K, P); on logged steps also four flat parts.
+    ) -> list[torch.Tensor]:
+        """Four flat (K, P) parts of the weighted batch gradient, for logged steps.
 
         The parts are (clean weighted, outlier weighted, clean plain, outlier plain). They are
         split with torch.where, not by multiplying with a 0/1 mask, so that an outlier with an
         infinite input cannot turn the clean part into NaN.
         """
         weighted = rows_w is not None and bias_w is not None
-        if not detail:
-            return self._gradient_sum(inputs, dz, rows_w, bias_w), None
         split = bool(outlier.any())
         sides = ((~outlier).unsqueeze(-1), outlier.unsqueeze(-1)) if split else (None,)
         # pieces[side][kind]: kind 0 weighted, 1 plain (only when weights exist)
@@ -389,7 +396,7 @@ class StackPass:
             out_w, out_u = flats[1][0], flats[1][-1]
         else:
             out_w = out_u = torch.zeros_like(clean_w)
-        return clean_w + out_w if split else clean_w.clone(), [clean_w, out_w, clean_u, out_u]
+        return [clean_w, out_w, clean_u, out_u]
 
     def _gradient_sum(
         self,
@@ -411,6 +418,79 @@ class StackPass:
             torch.sum(d_bias, dim=1, out=views[2 * layer + 1])
         return flat
 
+    def _without_outliers(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        norms: torch.Tensor,
+        params: list[torch.Tensor],
+        outlier: torch.Tensor,
+        clean_sum: torch.Tensor,
+        applied: list[tuple[_Group, torch.Tensor]],
+        reduce: float,
+    ) -> torch.Tensor:
+        """The clipped gradient (K, P) of the same step with the outliers taken out of the batch,
+        each member clipped at the level it applied on this step (logged steps only).
+
+        Taken out, not zeroed: under the mean reduction the batch mean is over the clean examples
+        left, and a compared unit (an example, or a group of m) keeps its clean examples and
+        averages over them; units left empty drop out of the average over units.
+        """
+        B = outlier.shape[1]
+        clean = ~outlier
+        n_clean = clean.sum(dim=1).to(self.dtype)
+        mean = self.reduction == "mean"
+        base = clean_sum * (B / n_clean.clamp(min=1.0))[:, None] if mean else clean_sum.clone()
+        without = base.clone()
+        for g, level in applied:
+            if not g.spec.per_example:
+                sub = g.take(base)
+                coef = self._batch_coefs(g, sub, params, level)[0]
+                without = g.put(without, sub * coef)
+                continue
+            sub_clean = g.take(clean)
+            k = sub_clean.shape[0]
+            m = g.microbatch or 1  # examples per compared unit
+            per_unit = sub_clean.reshape(k, B // m, m).to(self.dtype).sum(dim=2)  # (k, units)
+            units_left = (per_unit > 0).sum(dim=1).to(self.dtype).clamp(min=1.0)
+            # Scaling each clean example by m / (its unit's clean count) makes the kernel see
+            # each unit's mean over the examples it keeps.
+            spread = (m / per_unit.clamp(min=1.0)).repeat_interleave(m, dim=1)
+            scale = torch.where(sub_clean, spread, 0.0)
+            sub_inputs = [torch.where(sub_clean[..., None], g.take(a), 0.0) for a in inputs]
+            sub_dz = [torch.where(sub_clean[..., None], g.take(d), 0.0) for d in dz]
+            context = clipping.ExampleContext(
+                inputs=sub_inputs,
+                dz=[d * scale[..., None] for d in sub_dz],
+                norms=torch.where(sub_clean, g.take(norms) * scale, 0.0),
+                member_params=functools.partial(_member_rows, g, params),
+                unreduce=1.0 / reduce,
+                layers=self.arch.layers,
+                clipped_layers=self.clipped_layers,
+                eps=g.eps,
+                microbatch=g.microbatch,
+                share=False,
+            )
+            weights = g.spec.function()(context).weigh(level)
+            # The weights apply to the plain clean gradients: under the mean reduction the
+            # average over the units left (each unit's mean, times units / units left), under
+            # the sum reduction their sum.
+            factor = scale * ((B // m) / units_left)[:, None] if mean else sub_clean.to(self.dtype)
+            rows = [d * factor[..., None] for d in sub_dz]
+            without = g.put(without, self._flat_sum(sub_inputs, rows, weights))
+        return without
+
+    def _flat_sum(
+        self, inputs: list[torch.Tensor], dz: list[torch.Tensor], weights: clipping.ExampleWeights
+    ) -> torch.Tensor:
+        """sum_i (dz_i * w_i) a_i^T per layer into a flat (k, P) gradient, weights per layer."""
+        flat = torch.empty(dz[0].shape[0], self.layout.total, dtype=self.dtype)
+        views = self.layout.views(flat)
+        for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
+            views[2 * layer].copy_(bmm((d * weights.rows[layer]).transpose(1, 2), a))
+            torch.sum(d * weights.bias[layer].unsqueeze(-1), dim=1, out=views[2 * layer + 1])
+        return flat
+
     def _detail(
         self,
         clipped: torch.Tensor,
@@ -418,22 +498,32 @@ class StackPass:
         coef: torch.Tensor,
         sq: torch.Tensor,
         outlier: torch.Tensor,
+        without: torch.Tensor,
     ) -> dict[str, torch.Tensor]:
-        _, out_w, clean_u, out_u = parts
+        clean_w, out_w, clean_u, out_u = parts
         norm = functools.partial(torch.linalg.vector_norm, dim=1)
         pre = norm(clean_u + out_u)
         post = norm(clipped)
         out_after = norm(coef * out_w)
+        clean_after = norm(coef * clean_w)
         n_out = outlier.sum(dim=1).to(self.dtype)
+        n_clean = outlier.shape[1] - n_out
+        both = out_after + clean_after
+        shift = norm(clipped - without) / norm(without)
+        clean_norm = norm(clean_u)
         return {
             "grad_norm_pre": pre,
             "grad_norm_post": post,
             "clip_coef": post / pre,
-            "outlier_share": torch.where(n_out > 0, out_after / post, 0.0),
+            # |o| / (|o| + |c|) of the clipped outlier and clean parts: in [0, 1] by the
+            # triangle inequality, and the clean share is 1 minus it.
+            "outlier_share": torch.where((n_out > 0) & (both > 0), out_after / both, 0.0),
             "outlier_pass": torch.where(n_out > 0, out_after / norm(out_u), math.nan),
+            "outlier_shift": torch.where(n_out > 0, torch.where(n_clean > 0, shift, math.nan), 0.0),
+            "clean_cosine": (clipped * clean_u).sum(dim=1) / (post * clean_norm),
             "clean_sum": clean_u,
             "clean_sq_norms": torch.where(outlier, 0.0, sq),
-            "n_clean": (~outlier).sum(dim=1).to(self.dtype),
+            "n_clean": n_clean,
             "batch_outliers": n_out,
         }
 
@@ -629,9 +719,6 @@ class Engine:
         val_loss, val_metric = self.evaluator(self.params)
         delta = self.theta.detach() - before
         update_norm = torch.linalg.vector_norm(delta, dim=1)
-        clean_sum = detail["clean_sum"]
-        clean_norm = torch.linalg.vector_norm(clean_sum, dim=1)
-        cosine = -(delta * clean_sum).sum(dim=1) / (update_norm * clean_norm)
         if result.norms is None:
             raise RuntimeError("a logged step must carry per-example norms")
         norms = result.norms.double()
@@ -649,7 +736,8 @@ class Engine:
             "clipped_share": result.clipped_share,
             "outlier_share": detail["outlier_share"],
             "outlier_pass": detail["outlier_pass"],
-            "clean_cosine": cosine,
+            "outlier_shift": detail["outlier_shift"],
+            "clean_cosine": detail["clean_cosine"],
             "update_norm": update_norm,
             "example_norm_p50": quantiles[0],
             "example_norm_p90": quantiles[1],
@@ -701,6 +789,10 @@ class Engine:
 def init_seed(scenario: Scenario, seed: int) -> int:
     """The seed of a member's initial weights: model.init_seed combined with its training seed."""
     return int(np.random.SeedSequence([scenario.model.init_seed, seed]).generate_state(1)[0])
+
+
+def _member_rows(g: _Group, params: list[torch.Tensor]) -> list[torch.Tensor]:
+    return [g.take(p) for p in params]
 
 
 def _rows(mask: torch.Tensor, like: torch.Tensor) -> torch.Tensor:

@@ -9,7 +9,8 @@ import pytest
 import torch
 
 from core import api
-from core.engine import Engine, Member, run_members
+from core.engine import Engine, Member, StackPass, run_members
+from core.reference import flat, load_member, module_for, per_example_grads
 from core.results import collect
 from core.scenario import ClipConfig, Scenario, parse_scenario
 
@@ -259,3 +260,143 @@ def test_members_that_never_skip_are_the_same_to_the_bit_beside_a_skipping_one()
     apart = collect(Engine(scenario, members[1:]))
     for name, values in apart.metrics.items():
         np.testing.assert_array_equal(together.metrics[name][:, 1:], values)
+
+
+# ---------------------------------------------------------------------------------------------
+# The split statistics of a logged step, recomputed by hand from torch.func per-example
+# gradients (core.reference shares no code with the engine's backward or its clipping).
+
+SPLIT_BATCH = 12
+# Five flipped labels: enough for the outliers to pull against the clean mean; with groups of 2
+# the first group is all outliers and drops out when they are taken out.
+SPLIT_OUTLIERS = (0, 1, 5, 7, 10)
+
+
+def split_batch() -> tuple[Engine, torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
+    """A blobs batch whose outliers have their labels flipped: their gradients point away
+    from the clean ones. Returns the engine, x, y, the outlier mask and (B, P) gradients."""
+    scenario = parse_scenario(
+        {
+            "data": {"task": "blobs", "dim": 3, "classes": 2, "noise": 0.5},
+            "model": {"hidden": [8], "activation": "tanh"},
+            "train": {"batch_size": SPLIT_BATCH},
+        }
+    )
+    engine = Engine(scenario, [Member(ClipConfig(method="none"), 0)], dtype=torch.float64)
+    rows = engine.batches[0, 0]
+    x, y = engine.x_train[rows], engine.y_train[rows].clone()
+    outlier = torch.zeros(SPLIT_BATCH, dtype=torch.bool)
+    outlier[list(SPLIT_OUTLIERS)] = True
+    y[outlier] = 1 - y[outlier]
+    model = module_for(engine.arch).double()
+    load_member(model, engine.params, 0)
+    return engine, x, y, outlier, flat(per_example_grads(engine.arch, model, x, y))
+
+
+def clip_rows(rows: torch.Tensor, c: float) -> torch.Tensor:
+    """Each row times min(1, c / |row|)."""
+    return rows * torch.clamp(c / rows.norm(dim=1, keepdim=True), max=1.0)
+
+
+def by_hand(
+    clip: ClipConfig, g: torch.Tensor, outlier: torch.Tensor, reduction: str
+) -> dict[str, float]:
+    """share, pass, shift and cosine of DESIGN.md section 5 and issue 11, from (B, P) rows."""
+    c = float(clip.threshold or math.inf)
+    total = (lambda rows: rows.mean(dim=0)) if reduction == "mean" else (lambda rows: rows.sum(0))
+    clean = g[~outlier]
+    m = clip.microbatch if clip.method == "microbatch-norm" else 1
+    if clip.method == "global-norm":
+        compared = total(g).norm()
+        coef = min(1.0, c / float(compared))
+        clipped = g * coef  # every example alike
+        without = total(clean) * min(1.0, c / float(total(clean).norm()))
+    else:
+        # Each unit of m examples is clipped by its mean's norm; taken out, a unit keeps its
+        # clean examples and averages over them, and an emptied unit drops out.
+        units = [list(range(i, i + m)) for i in range(0, SPLIT_BATCH, m)]
+        clipped = torch.empty_like(g)
+        kept = []
+        for unit in units:
+            mean = g[unit].mean(dim=0)
+            clipped[unit] = g[unit] * min(1.0, c / float(mean.norm()))
+            rest = [i for i in unit if not outlier[i]]
+            if rest:
+                kept.append((rest, clip_rows(g[rest].mean(dim=0, keepdim=True), c)[0]))
+        if reduction == "mean":
+            without = torch.stack([v for _, v in kept]).mean(dim=0)
+        else:
+            without = sum(v * len(rest) for rest, v in kept)
+    update = total(clipped)
+    scale = 1.0 / SPLIT_BATCH if reduction == "mean" else 1.0
+    out_part, clean_part = clipped[outlier].sum(0) * scale, clipped[~outlier].sum(0) * scale
+    plain_out = g[outlier].sum(0) * scale
+    clean_plain = clean.sum(0)
+    return {
+        "outlier_share": float(out_part.norm() / (out_part.norm() + clean_part.norm())),
+        "old_share": float(out_part.norm() / update.norm()),
+        "outlier_pass": float(out_part.norm() / plain_out.norm()),
+        "outlier_shift": float((update - without).norm() / without.norm()),
+        "clean_cosine": float(update @ clean_plain / (update.norm() * clean_plain.norm())),
+    }
+
+
+SPLIT_CLIPS = [
+    ClipConfig(method="none"),
+    ClipConfig(method="global-norm", threshold=0.05),
+    ClipConfig(method="example-norm", threshold=0.3),
+    ClipConfig(method="microbatch-norm", threshold=0.2, microbatch=4),
+    ClipConfig(method="microbatch-norm", threshold=0.2, microbatch=2, label="pairs"),
+]
+
+
+@pytest.mark.parametrize("reduction", ["mean", "sum"])
+def test_outlier_share_pass_shift_and_cosine_match_a_hand_recomputation(reduction: str) -> None:
+    engine, x, y, outlier, g = split_batch()
+    K = len(SPLIT_CLIPS)
+    grad_pass = StackPass(
+        engine.arch, [Member(c, 0) for c in SPLIT_CLIPS], reduction, True, torch.float64
+    )
+    params = [p.expand(K, *p.shape[1:]) for p in engine.params]
+    detail = grad_pass.run(
+        params, x.expand(K, *x.shape), y.expand(K, *y.shape), outlier.expand(K, -1), detail=True
+    ).detail
+    assert detail is not None
+    old_shares = []
+    for i, clip in enumerate(SPLIT_CLIPS):
+        expected = by_hand(clip, g, outlier, reduction)
+        for name in ("outlier_share", "outlier_pass", "outlier_shift", "clean_cosine"):
+            assert float(detail[name][i]) == pytest.approx(expected[name], rel=1e-9), (
+                clip.method,
+                name,
+            )
+        assert 0.0 <= float(detail["outlier_share"][i]) <= 1.0
+        old_shares.append(expected["old_share"])
+    # The earlier share (outlier part over the whole update) leaves [0, 1] on this batch, where
+    # the flipped labels pull against the clean examples; the new one cannot.
+    assert max(old_shares) > 1.0
+
+
+@pytest.mark.parametrize(
+    "train",
+    [
+        {"optimizer": "sgd", "momentum": 0.9},
+        {"optimizer": "adam", "lr": 0.01},
+    ],
+    ids=["momentum", "adam"],
+)
+def test_clean_cosine_is_one_without_outliers_or_clipping_whatever_the_optimizer(
+    train: dict[str, object],
+) -> None:
+    # With nothing clipped and no outliers the clipped gradient is the clean examples' mean
+    # (cosine 1 by definition); the optimizer's parameter change is not what it measures.
+    scenario = parse_scenario(
+        {
+            "data": {"task": "linear", "dim": 4, "n_train": 512, "noise": 0.5},
+            "model": {"kind": "linear"},
+            "train": {"steps": 60, "batch_size": 16, "eval_every": 5, **train},
+            "clip": [{"method": "none"}],
+        }
+    )
+    cosine = api.run(scenario).metric("clean_cosine")[:, 0]
+    np.testing.assert_allclose(cosine, 1.0, rtol=0, atol=1e-6)
