@@ -58,6 +58,8 @@ __all__ = [
 EXPLODE_FACTOR = 1e4
 # Exponential weight of the running estimates behind noise_scale, per logged step.
 NOISE_SCALE_ALPHA = 0.95
+# The split statistics an engine with outlier_steps=True averages over every outlier step.
+OUTLIER_MEANS = ("outlier_share", "outlier_pass")
 
 
 @dataclass
@@ -193,8 +195,13 @@ class StackPass:
         y: torch.Tensor,
         outlier: torch.Tensor,
         detail: bool,
+        split: bool = False,
     ) -> PassResult:
-        """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views."""
+        """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views.
+
+        `detail` adds every statistic of a logged step; `split` alone adds only the outlier
+        share and pass-through (cheap: the outlier examples are gathered, not masked).
+        """
         arch = self.arch
         K, B = x.shape[:2]
         # dz is taken of the reduced loss (mean or sum), so plain sums of dz^T a are the batch
@@ -256,9 +263,12 @@ class StackPass:
         # The applied gradient is the same sum whether the step is logged or not, so logging
         # never changes a trajectory; logged steps add the clean and outlier parts beside it.
         flat = self._gradient_sum(inputs, dz, rows_w, bias_w)
-        parts = self._split_sums(inputs, dz, rows_w, bias_w, outlier) if detail else None
+        light = split and not detail and bool(outlier.any())
+        parts = None
+        if detail or light:
+            parts = self._parts(inputs, dz, rows_w, bias_w, outlier, flat, plain=detail)
 
-        coef_all = torch.ones_like(flat) if detail else None
+        coef_all = torch.ones_like(flat) if parts is not None else None
         for g in batch_groups:
             sub = g.take(flat)
             level = g.thresholds
@@ -277,12 +287,15 @@ class StackPass:
                 coef_all = g.put(coef_all, coef.expand_as(sub))
 
         detail_stats = None
-        if parts is not None and coef_all is not None and sq is not None:
-            assert norms is not None
-            without = self._without_outliers(
-                inputs, dz, norms, params, outlier, parts[2], applied, reduce
-            )
-            detail_stats = self._detail(flat, parts, coef_all, sq, outlier, without)
+        if parts is not None and coef_all is not None:
+            if detail:
+                assert norms is not None and sq is not None and parts[2] is not None
+                without = self._without_outliers(
+                    inputs, dz, norms, params, outlier, parts[2], applied, reduce
+                )
+                detail_stats = self._detail(flat, parts, coef_all, sq, outlier, without)
+            else:
+                detail_stats = self._outlier_detail(parts, coef_all, outlier)
 
         if self.noisy:
             flat = flat.clone()
@@ -346,6 +359,76 @@ class StackPass:
         result: clipping.BatchResult = g.spec.function()(context, level)
         return result
 
+    def _parts(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        rows_w: list[torch.Tensor] | None,
+        bias_w: list[torch.Tensor] | None,
+        outlier: torch.Tensor,
+        weighted_sum: torch.Tensor,
+        plain: bool,
+    ) -> list[torch.Tensor | None]:
+        """(clean weighted, outlier weighted, clean plain, outlier plain) flat (K, P) parts of
+        the batch gradient before batch-mean clipping; clean plain only when `plain`.
+
+        The outliers are few, so their parts are sums over the gathered outlier examples and
+        the clean parts are the whole sums less them. Non-finite outlier parts would make that
+        difference NaN; then the masked split below is used.
+        """
+        weighted = rows_w is not None and bias_w is not None
+        whole_plain = None
+        if plain:
+            whole_plain = self._gradient_sum(inputs, dz, None, None) if weighted else weighted_sum
+        if not bool(outlier.any()):
+            zeros = torch.zeros_like(weighted_sum)
+            return [weighted_sum, zeros, whole_plain, zeros]
+        out_w, out_u = self._outlier_sums(inputs, dz, rows_w, bias_w, outlier)
+        # Finite data cannot make a finite model's outlier parts non-finite.
+        if self.data_nonfinite and not (
+            bool(torch.isfinite(out_w).all()) and bool(torch.isfinite(out_u).all())
+        ):
+            return list(self._split_sums(inputs, dz, rows_w, bias_w, outlier))
+        clean_plain = None if whole_plain is None else whole_plain - out_u
+        return [weighted_sum - out_w, out_w, clean_plain, out_u]
+
+    def _outlier_sums(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        rows_w: list[torch.Tensor] | None,
+        bias_w: list[torch.Tensor] | None,
+        outlier: torch.Tensor,
+    ) -> tuple[torch.Tensor, torch.Tensor]:
+        """Weighted and plain flat sums (K, P) over each member's outlier examples alone."""
+        K = outlier.shape[0]
+        member, position = torch.nonzero(outlier, as_tuple=True)  # (n,) each: the outliers
+
+        def pick(t: torch.Tensor) -> torch.Tensor:
+            picked = t.expand(K, *t.shape[1:])[member, position]
+            return picked.unsqueeze(-1) if picked.dim() == 1 else picked  # (n, width)
+
+        def per_member(values: torch.Tensor) -> torch.Tensor:
+            """Sum the outliers' rows (n, ...) into their members' (K, ...)."""
+            return values.new_zeros(K, *values.shape[1:]).index_add_(0, member, values)
+
+        weighted = rows_w is not None and bias_w is not None
+        parts: list[list[torch.Tensor]] = [[], []]
+        for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
+            a_o, d_o = pick(a), pick(d)
+            kinds = [(d_o, d_o)]
+            if weighted:  # without per-example weights the weighted part is the plain one
+                assert rows_w is not None and bias_w is not None
+                d_w_rows = d_o * pick(rows_w[layer])
+                d_w_bias = d_w_rows if self.scalar_weights else d_o * pick(bias_w[layer])
+                kinds.insert(0, (d_w_rows, d_w_bias))
+            for kind, (d_rows, d_bias) in enumerate(kinds):
+                outer = d_rows.unsqueeze(2) * a_o.unsqueeze(1)  # (n, out, in)
+                parts[kind].append(per_member(outer).flatten(1))
+                parts[kind].append(per_member(d_bias))
+        plain = torch.cat(parts[0], dim=1)
+        return (plain, plain) if not weighted else (plain, torch.cat(parts[1], dim=1))
+
     def _split_sums(
         self,
         inputs: list[torch.Tensor],
@@ -354,7 +437,7 @@ class StackPass:
         bias_w: list[torch.Tensor] | None,
         outlier: torch.Tensor,
     ) -> list[torch.Tensor]:
-        """Four flat (K, P) parts of the weighted batch gradient, for logged steps.
+        """Four flat (K, P) parts of the weighted batch gradient, masked example by example.
 
         The parts are (clean weighted, outlier weighted, clean plain, outlier plain). They are
         split with torch.where, not by multiplying with a 0/1 mask, so that an outlier with an
@@ -491,16 +574,34 @@ class StackPass:
             torch.sum(d * weights.bias[layer].unsqueeze(-1), dim=1, out=views[2 * layer + 1])
         return flat
 
+    def _outlier_detail(
+        self, parts: list[torch.Tensor | None], coef: torch.Tensor, outlier: torch.Tensor
+    ) -> dict[str, torch.Tensor]:
+        """The outlier share and pass-through alone (see `_detail`), in few operations: this
+        runs on every outlier step of a map."""
+        clean_w, out_w, _, out_u = parts
+        assert clean_w is not None and out_w is not None and out_u is not None
+        sizes = torch.linalg.vector_norm(torch.stack((coef * out_w, coef * clean_w, out_u)), dim=2)
+        n_out = outlier.sum(dim=1).to(self.dtype)
+        return {
+            # share: |o| / (|o| + |c|); NaN where nothing passed at all, counted nowhere
+            OUTLIER_MEANS[0]: sizes[0] / (sizes[0] + sizes[1]),
+            OUTLIER_MEANS[1]: sizes[0] / sizes[2],
+            "batch_outliers": n_out,
+        }
+
     def _detail(
         self,
         clipped: torch.Tensor,
-        parts: list[torch.Tensor],
+        parts: list[torch.Tensor | None],
         coef: torch.Tensor,
         sq: torch.Tensor,
         outlier: torch.Tensor,
         without: torch.Tensor,
     ) -> dict[str, torch.Tensor]:
         clean_w, out_w, clean_u, out_u = parts
+        assert clean_w is not None and out_w is not None
+        assert clean_u is not None and out_u is not None
         norm = functools.partial(torch.linalg.vector_norm, dim=1)
         pre = norm(clean_u + out_u)
         post = norm(clipped)
@@ -541,6 +642,7 @@ class Engine:
         dtype: torch.dtype = torch.float32,
         trace: bool = False,
         keep_norms: bool = False,
+        outlier_steps: bool = False,
     ) -> None:
         if not members:
             raise ValueError("an engine needs at least one member")
@@ -608,6 +710,13 @@ class Engine:
         self.diverged_at: list[int | None] = [None] * K
         self._noise_tr = torch.zeros(K, dtype=torch.float64)
         self._noise_g2 = torch.zeros(K, dtype=torch.float64)
+        # With outlier_steps, every step whose batch holds an outlier is measured (not only the
+        # logged ones) and its outlier share and pass-through are summed per member: a map's
+        # means over the outlier steps then count every such step. It costs two small sums over
+        # the gathered outlier examples on those steps.
+        self.outlier_steps = outlier_steps
+        self._outlier_sums = torch.zeros(len(OUTLIER_MEANS), K, dtype=torch.float64)
+        self._outlier_counts = torch.zeros(len(OUTLIER_MEANS), K, dtype=torch.float64)
 
     def batch_indices(self, member: int) -> np.ndarray:
         """(steps, B) rows of x_train that a member trained on."""
@@ -633,7 +742,7 @@ class Engine:
             x, y, outlier = x.expand(K, -1, -1), y.expand(K, -1), outlier.expand(K, -1)
         else:
             x, y, outlier = x[self.member_slot], y[self.member_slot], outlier[self.member_slot]
-        result = self.grad_pass.run(self.params, x, y, outlier, logged)
+        result = self.grad_pass.run(self.params, x, y, outlier, logged, self.outlier_steps)
         self._last_outlier = outlier
         if self.example_norms is not None and result.norms is not None:
             self.example_norms[:, step - 1] = result.norms.double().numpy()
@@ -660,6 +769,8 @@ class Engine:
 
         before = self.theta.detach().clone() if logged else None
         self._apply(result.grads, frozen)
+        if self.outlier_steps and result.detail is not None:
+            self._add_outlier_step(result.detail)
 
         if not logged:
             return None
@@ -693,6 +804,20 @@ class Engine:
                 if _stacked(value, param):
                     old = saved_state.get(key, torch.zeros_like(value))
                     value.copy_(torch.where(keep, old, value))
+
+    def _add_outlier_step(self, detail: dict[str, torch.Tensor]) -> None:
+        values = torch.stack([detail[name] for name in OUTLIER_MEANS]).double()  # (2, K)
+        counted = (detail["batch_outliers"] > 0) & self.alive & torch.isfinite(values)
+        self._outlier_sums += torch.where(counted, values, 0.0)
+        self._outlier_counts += counted
+
+    def outlier_step_means(self) -> dict[str, np.ndarray]:
+        """Per member (K,), the mean of each split statistic over every step whose batch held
+        an outlier while the member was alive (NaN: no such step); needs outlier_steps=True."""
+        if not self.outlier_steps:
+            raise RuntimeError("outlier_step_means needs an engine made with outlier_steps=True")
+        means = (self._outlier_sums / self._outlier_counts).numpy()
+        return {name: means[i] for i, name in enumerate(OUTLIER_MEANS)}
 
     def optimizer_state(self, member: int) -> dict[str, torch.Tensor]:
         """One member's optimizer state: its rows of the moments, and its block's step count."""

@@ -100,7 +100,11 @@ def run_chunk(scenario_text: str, chunk: Chunk) -> list[dict[str, Any]]:
 
     scenario = loads_scenario(scenario_text, "<map>")
     members = members_of(scenario, chunk)
-    result = collect(Engine(scenario, members, chunk.batch_size))
+    engine = Engine(scenario, members, chunk.batch_size, outlier_steps=True)
+    result = collect(engine)
+    # Outlier share and pass-through: means over every step whose batch held an outlier, not
+    # only the logged ones (the engine measures those steps for this).
+    outlier_means = engine.outlier_step_means()
     clean_steps = result.metric("batch_outliers") == 0  # (logged, K)
     rows = []
     for i, (point, member) in enumerate(zip(chunk.points, members, strict=True)):
@@ -117,8 +121,8 @@ def run_chunk(scenario_text: str, chunk: Chunk) -> list[dict[str, Any]]:
                 "diverged": result.diverged_at[i] is not None,
                 "clipped_share": single(_mean(share)),
                 "clean_clipped_share": single(_mean(clean_share)),
-                "outlier_share": single(_mean(result.metric("outlier_share")[:, i])),
-                "outlier_pass": single(_mean(result.metric("outlier_pass")[:, i])),
+                "outlier_share": single(float(outlier_means["outlier_share"][i])),
+                "outlier_pass": single(float(outlier_means["outlier_pass"][i])),
             }
         )
     return rows

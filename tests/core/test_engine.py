@@ -161,6 +161,25 @@ def test_the_same_run_twice_gives_identical_arrays() -> None:
         np.testing.assert_array_equal(first.metrics[name], second.metrics[name])
 
 
+def test_logging_every_step_does_not_change_a_trajectory() -> None:
+    # A logged step measures more, but applies the same gradient, computed the same way.
+    scenario = parse_scenario(
+        {
+            **STACK_PRESET,
+            "clip": [
+                {"method": "global-norm", "threshold": 0.5},
+                {"method": "example-norm", "threshold": 0.5},
+                {"method": "microbatch-norm", "threshold": 0.5, "microbatch": 4},
+            ],
+        }
+    )
+    sparse = collect(Engine(scenario, run_members(scenario)))
+    dense = collect(Engine(scenario.with_overrides({"train.eval_every": 1}), run_members(scenario)))
+    rows = sparse.steps - 1  # the dense run's rows of the sparse run's logged steps
+    for name in ("val_loss", "grad_norm_pre", "outlier_share", "outlier_pass"):
+        np.testing.assert_array_equal(dense.metric(name)[rows], sparse.metric(name))
+
+
 def test_skipping_a_spike_keeps_parameters_and_optimizer_state() -> None:
     scenario = parse_scenario(
         {

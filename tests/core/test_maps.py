@@ -15,10 +15,10 @@ import pytest
 
 from core.analysis import analyse, stability_map
 from core.engine import Engine, Member
-from core.maps import MapProgress, plan, read_table, run_map
+from core.maps import MapProgress, members_of, plan, read_table, run_chunk, run_map
 from core.profile import norm_profile
 from core.results import collect
-from core.scenario import ClipConfig, load_scenario, parse_scenario
+from core.scenario import ClipConfig, dumps_scenario, load_scenario, parse_scenario
 from tests.conftest import REPO, SCENARIOS
 
 SMALL = """\
@@ -174,6 +174,24 @@ def test_resuming_with_a_changed_scenario_is_refused(tmp_path: Path) -> None:
     run_map(scenario, tmp_path, jobs=1)
     with pytest.raises(GradfenceInputError, match="another scenario"):
         run_map(scenario.with_overrides({"train.lr": 0.03}), tmp_path, jobs=1, resume=True)
+
+
+def test_a_map_point_means_outlier_share_and_pass_over_every_outlier_step_of_its_run() -> None:
+    # The reference is the same members trained with every step logged: the mean of their
+    # logged rows over the steps whose batch held an outlier. Logging does not change the
+    # trajectory, so the two runs are the same run.
+    scenario = parse_scenario(__import__("tomllib").loads(SMALL))
+    chunk = next(c for c in plan(scenario) if c.batch_size == 16)
+    rows = run_chunk(dumps_scenario(scenario), chunk)
+    every = collect(
+        Engine(scenario.with_overrides({"train.eval_every": 1}), members_of(scenario, chunk), 16)
+    )
+    with_outliers = every.metric("batch_outliers") > 0  # (steps, members)
+    assert 0.3 < with_outliers[:, 0].mean() < 0.7  # rate 0.5: about half the steps
+    for i, row in enumerate(rows):
+        for name in ("outlier_pass", "outlier_share"):
+            expected = every.metric(name)[with_outliers[:, i], i].astype(np.float64).mean()
+            assert row[name] == pytest.approx(expected, rel=1e-5), (row["label"], name)
 
 
 @pytest.mark.slow
