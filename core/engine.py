@@ -109,6 +109,16 @@ class _Group:
             [r.level(v) for r, v in zip(self.rules, values, strict=True)], dtype=watched.dtype
         )
 
+    def example_levels(self, values: torch.Tensor) -> torch.Tensor:
+        """This step's thresholds for a per-example group, given every compared value (k, n)."""
+        if not self.adaptive:
+            return self.thresholds
+        rows = values.double().numpy()
+        return torch.tensor(
+            [r.level_of_examples(row) for r, row in zip(self.rules, rows, strict=True)],
+            dtype=values.dtype,
+        )
+
 
 @dataclass
 class PassResult:
@@ -218,10 +228,12 @@ class StackPass:
         # Between logged steps a stack of batch-mean methods never looks at per-example norms.
 
         maybe_nonfinite = self.data_nonfinite and self.any_per_example
+        dropped: torch.Tensor | None = None  # (K, B) examples dropped as non-finite
         if norms is not None and maybe_nonfinite and not bool(torch.isfinite(norms).all()):
             # Per-example methods drop an example whose gradient is not finite (its norm is
             # above any threshold); batch-mean methods see the non-finite mean, as in practice.
             keep = (torch.isfinite(norms) | ~self.per_example[:, None]).unsqueeze(-1)
+            dropped = ~keep.squeeze(-1)
             inputs = [torch.where(keep, a, 0.0) for a in inputs]
             dz = [torch.where(keep, d, 0.0) for d in dz]
             norms = torch.where(keep.squeeze(-1), norms, 0.0)
@@ -248,7 +260,14 @@ class StackPass:
             sub_dz = [g.take(d) for d in dz]
             assert norms is not None  # computed whenever a per-example method is present
             weights, seen, level = self._example_weights(
-                g, sub_inputs, sub_dz, g.take(norms), params, 1.0 / reduce, detail
+                g,
+                sub_inputs,
+                sub_dz,
+                g.take(norms),
+                params,
+                1.0 / reduce,
+                detail,
+                None if dropped is None else g.take(dropped),
             )
             watched, levels = g.put(watched, seen), g.put(levels, level)
             share = g.put(share, weights.clipped_share)
@@ -266,7 +285,8 @@ class StackPass:
         light = split and not detail and bool(outlier.any())
         parts = None
         if detail or light:
-            parts = self._parts(inputs, dz, rows_w, bias_w, outlier, flat, plain=detail)
+            # A copy: batch-mean clipping below scales `flat` in place.
+            parts = self._parts(inputs, dz, rows_w, bias_w, outlier, flat.clone(), plain=detail)
 
         coef_all = torch.ones_like(flat) if parts is not None else None
         for g in batch_groups:
@@ -327,6 +347,7 @@ class StackPass:
         params: list[torch.Tensor],
         unreduce: float,
         detail: bool,
+        dropped: torch.Tensor | None = None,
     ) -> tuple[clipping.ExampleWeights, torch.Tensor, torch.Tensor]:
         context = clipping.ExampleContext(
             inputs=inputs,
@@ -341,9 +362,18 @@ class StackPass:
             share=detail,
         )
         compared: clipping.Compared = g.spec.function()(context)
-        # The watched quantity feeds adaptive rules and spike skipping only; skip it otherwise.
-        seen = compared.watch().amax(dim=1) if g.adaptive or self.any_skip else g.unwatched
-        level = g.levels(seen)
+        # Adaptive rules follow every compared value; spike skipping watches the largest.
+        # Neither is computed when nothing needs it.
+        seen, level = g.unwatched, g.thresholds
+        if g.adaptive or self.any_skip:
+            values = compared.watch()
+            seen = values.amax(dim=1)
+            if g.adaptive:
+                if dropped is not None:  # a dropped example's zeroed value is no measurement
+                    k, n = values.shape
+                    gone = dropped.reshape(k, n, -1).any(dim=2)
+                    values = torch.where(gone, math.nan, values)
+                level = g.example_levels(values)
         return compared.weigh(level), seen, level
 
     def _batch_coefs(
@@ -369,8 +399,10 @@ class StackPass:
         weighted_sum: torch.Tensor,
         plain: bool,
     ) -> list[torch.Tensor | None]:
-        """(clean weighted, outlier weighted, clean plain, outlier plain) flat (K, P) parts of
-        the batch gradient before batch-mean clipping; clean plain only when `plain`.
+        """(clean weighted, outlier weighted, clean plain, outlier plain, whole plain) flat
+        (K, P) parts of the batch gradient before batch-mean clipping; the plain sums only when
+        `plain`. The whole plain sum is the very tensor batch-mean clipping compares, so the
+        logged pre-clip norm is the norm the clipping decision saw.
 
         The outliers are few, so their parts are sums over the gathered outlier examples and
         the clean parts are the whole sums less them. Non-finite outlier parts would make that
@@ -382,15 +414,15 @@ class StackPass:
             whole_plain = self._gradient_sum(inputs, dz, None, None) if weighted else weighted_sum
         if not bool(outlier.any()):
             zeros = torch.zeros_like(weighted_sum)
-            return [weighted_sum, zeros, whole_plain, zeros]
+            return [weighted_sum, zeros, whole_plain, zeros, whole_plain]
         out_w, out_u = self._outlier_sums(inputs, dz, rows_w, bias_w, outlier)
         # Finite data cannot make a finite model's outlier parts non-finite.
         if self.data_nonfinite and not (
             bool(torch.isfinite(out_w).all()) and bool(torch.isfinite(out_u).all())
         ):
-            return list(self._split_sums(inputs, dz, rows_w, bias_w, outlier))
+            return [*self._split_sums(inputs, dz, rows_w, bias_w, outlier), whole_plain]
         clean_plain = None if whole_plain is None else whole_plain - out_u
-        return [weighted_sum - out_w, out_w, clean_plain, out_u]
+        return [weighted_sum - out_w, out_w, clean_plain, out_u, whole_plain]
 
     def _outlier_sums(
         self,
@@ -579,7 +611,7 @@ class StackPass:
     ) -> dict[str, torch.Tensor]:
         """The outlier share and pass-through alone (see `_detail`), in few operations: this
         runs on every outlier step of a map."""
-        clean_w, out_w, _, out_u = parts
+        clean_w, out_w, _, out_u, _ = parts
         assert clean_w is not None and out_w is not None and out_u is not None
         sizes = torch.linalg.vector_norm(torch.stack((coef * out_w, coef * clean_w, out_u)), dim=2)
         n_out = outlier.sum(dim=1).to(self.dtype)
@@ -599,11 +631,11 @@ class StackPass:
         outlier: torch.Tensor,
         without: torch.Tensor,
     ) -> dict[str, torch.Tensor]:
-        clean_w, out_w, clean_u, out_u = parts
+        clean_w, out_w, clean_u, out_u, whole = parts
         assert clean_w is not None and out_w is not None
-        assert clean_u is not None and out_u is not None
+        assert clean_u is not None and out_u is not None and whole is not None
         norm = functools.partial(torch.linalg.vector_norm, dim=1)
-        pre = norm(clean_u + out_u)
+        pre = norm(whole)
         post = norm(clipped)
         out_after = norm(coef * out_w)
         clean_after = norm(coef * clean_w)

@@ -12,7 +12,8 @@ from core import api
 from core.engine import Engine, Member, StackPass, run_members
 from core.reference import flat, load_member, module_for, per_example_grads
 from core.results import collect
-from core.scenario import ClipConfig, Scenario, parse_scenario
+from core.scenario import ClipConfig, Scenario, load_scenario, parse_scenario
+from tests.conftest import SCENARIOS
 
 
 def frozen_linear(n_train: int = 2048, dim: int = 8, noise: float = 0.5) -> Scenario:
@@ -419,3 +420,20 @@ def test_clean_cosine_is_one_without_outliers_or_clipping_whatever_the_optimizer
     )
     cosine = api.run(scenario).metric("clean_cosine")[:, 0]
     np.testing.assert_allclose(cosine, 1.0, rtol=0, atol=1e-6)
+
+
+def test_a_percentile_rule_on_example_norm_clips_one_share_of_examples_at_any_batch_size() -> None:
+    # Definition of a percentile: the 90th percentile of the examples' norms is exceeded by 10%
+    # of them. Fed each example (not each batch's largest, which grows with B), the rule clips
+    # about 10% of clean examples at B = 8 and at B = 512; the 0.02 margin is ours.
+    coupling = load_scenario(SCENARIOS / "batch-size-coupling.toml")
+    clip = ClipConfig(method="example-norm", rule="percentile", percentile=90.0)
+    clean = coupling.with_overrides({"outliers.kind": "none", "train.eval_every": 1})
+    for batch in (8, 512):
+        shares = collect(Engine(clean, [Member(clip, 0)], batch)).metric("clipped_share")[:, 0]
+        assert abs(float(np.mean(shares[clip.warmup + 1 :])) - 0.10) < 0.02, batch
+    # With the preset's outliers (gradient norm near 250 against ordinary ones below 10) the
+    # outlier stands far above that level: most of its pull is cut.
+    noisy = coupling.with_overrides({"train.eval_every": 1})
+    passes = collect(Engine(noisy, [Member(clip, 0)], 32)).metric("outlier_pass")[:, 0]
+    assert float(np.nanmean(passes)) < 0.1
