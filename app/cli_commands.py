@@ -112,12 +112,14 @@ def command_map(args: argparse.Namespace) -> int:
         )
         return EXIT_INTERNAL
     progress.close()
-    results = analyse(rows, tolerance)
+    from core.tasks import floor_source, loss_floor
+
+    floor = loss_floor(scenario)
+    results = analyse(rows, tolerance, floor)
     from core.profile import norm_profile, profile_sentence, suggest_thresholds
 
-    write_text_atomic(
-        out / "windows.json", json.dumps(windows_json(results, tolerance), indent=2) + "\n"
-    )
+    found = windows_json(results, tolerance, floor, floor_source(scenario))
+    write_text_atomic(out / "windows.json", json.dumps(found, indent=2) + "\n")
     profile = norm_profile(scenario)
     suggestions = suggest_thresholds(scenario)
     profile_json = profile.as_json()

@@ -19,6 +19,7 @@ from core.maps import MapProgress, members_of, plan, read_table, run_chunk, run_
 from core.profile import norm_profile
 from core.results import collect
 from core.scenario import ClipConfig, dumps_scenario, load_scenario, parse_scenario
+from core.tasks import loss_floor
 from tests.conftest import REPO, SCENARIOS
 
 SMALL = """\
@@ -201,13 +202,16 @@ def test_the_coupling_preset_couples_global_norm_to_the_batch_size_and_not_examp
     # Mirrors Brock et al. 2021 (section 4.1, appendix D; REFERENCES.md): the best clipping
     # threshold of batch-mean clipping falls as the batch size grows; per-example clipping
     # shows no such trend.
+    # The verdict must not hang on the tolerance: it holds at the preset's own and at 0.5, on
+    # the loss above the task's floor (the target-noise variance, core.tasks.loss_floor).
     scenario = load_scenario(SCENARIOS / "batch-size-coupling.toml")
     rows = run_map(scenario, tmp_path, jobs=2)
-    results = analyse(rows, scenario.map.tolerance)
-    global_norm, example_norm = results["global-norm"], results["example-norm"]
-    assert global_norm.lower_slope is not None and global_norm.lower_slope < -0.1
-    assert global_norm.common is None
-    assert example_norm.common is not None
+    for tolerance in sorted({scenario.map.tolerance, 0.5}):
+        results = analyse(rows, tolerance, loss_floor(scenario))
+        global_norm, example_norm = results["global-norm"], results["example-norm"]
+        assert global_norm.lower_slope is not None and global_norm.lower_slope < -0.1
+        assert global_norm.common is None, tolerance
+        assert example_norm.common is not None, tolerance
     # The seeds agree: every batch size's best global-norm threshold falls as B grows.
     smap = stability_map(rows, "global-norm")
     best = [smap.thresholds[int(np.argmin(row))] for row in smap.loss]
