@@ -52,7 +52,7 @@ class Point:
 
     def key(self, scenario: Scenario) -> tuple[str, str, int, int]:
         label = scenario.clip[self.clip_index].display_name
-        return (label, _threshold_text(self.threshold), self.batch_size, self.seed)
+        return (label, threshold_text(self.threshold), self.batch_size, self.seed)
 
 
 @dataclass(frozen=True)
@@ -133,7 +133,8 @@ def _mean(values: np.ndarray) -> float:
     return float(finite.mean()) if finite.size else math.nan
 
 
-def _threshold_text(threshold: float) -> str:
+def threshold_text(threshold: float) -> str:
+    """A grid threshold as map.csv writes it (every digit; empty for method none)."""
     return "" if math.isnan(threshold) else repr(float(threshold))
 
 
@@ -282,7 +283,7 @@ def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[st
 def _row_key(row: dict[str, Any]) -> tuple[str, str, int, int]:
     return (
         str(row["label"]),
-        _threshold_text(float(row["threshold"])),
+        threshold_text(float(row["threshold"])),
         int(row["batch_size"]),
         int(row["seed"]),
     )
