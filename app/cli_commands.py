@@ -116,25 +116,21 @@ def command_map(args: argparse.Namespace) -> int:
 
     floor = loss_floor(scenario)
     results = analyse(rows, tolerance, floor)
-    from core.profile import norm_profile, profile_sentence, suggest_thresholds
+    from core.profile import norm_profile, profile_sentence, suggest_thresholds, suggestion_line
 
     found = windows_json(results, tolerance, floor, floor_source(scenario))
     write_text_atomic(out / "windows.json", json.dumps(found, indent=2) + "\n")
     profile = norm_profile(scenario)
     suggestions = suggest_thresholds(scenario)
     profile_json = profile.as_json()
-    profile_json["suggestions"] = [s.__dict__ for s in suggestions]
+    profile_json["suggestions"] = [s.as_json() for s in suggestions]
     write_text_atomic(out / "profile.json", json.dumps(profile_json, indent=2) + "\n")
     for w in results.values():
         print(sentence(w))
         print(window_line(w))
     print(profile_sentence(profile))
     for s in suggestions:
-        where = f" at batch size {s.batch_size}" if s.batch_size else ""
-        print(
-            f"suggested {s.label} threshold: {s.threshold:.3g}, the {s.percentile:g}th percentile "
-            f"of unclipped warm-up norms{where} (clips {s.clip_rate:.0%} of them)."
-        )
+        print(suggestion_line(s, results.get(s.label)))
     print(f"wrote map.csv, windows.json and profile.json to {out}")
     return EXIT_OK
 

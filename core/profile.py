@@ -350,42 +350,130 @@ class Suggestion:
     label: str
     method: str
     threshold: float
-    clip_rate: float  # share of warm-up steps (batch-mean) or examples (per-example) above it
+    clip_rate: float  # share of the kept warm-up steps (or examples) above it
     batch_size: int | None  # the batch size a batch-mean suggestion was derived at
     percentile: float
+    left_out: int = 0  # warm-up steps (examples) left out: those with outliers
+    seen: int = 0  # warm-up steps (examples) in all
+    train_batch: int = 0  # train.batch_size: the window a per-example suggestion is judged by
+    kept: np.ndarray = field(default_factory=lambda: np.zeros(0), repr=False, compare=False)
+
+    def clip_rate_at(self, threshold: float) -> float:
+        """The share of the kept warm-up values above `threshold`."""
+        return float((self.kept > threshold).mean()) if self.kept.size else math.nan
+
+    def as_json(self) -> dict[str, Any]:
+        """For profile.json: every field but the warm-up values themselves."""
+        out = {k: v for k, v in self.__dict__.items() if k != "kept"}
+        ready: dict[str, Any] = json_ready(out)
+        return ready
 
 
 def suggest_thresholds(
     scenario: Scenario, warmup: int = 50, percentile: float = 90.0
 ) -> list[Suggestion]:
-    """Percentile thresholds from an unclipped warm-up, for the norm methods of the scenario."""
+    """Percentile thresholds from an unclipped warm-up, for the norm methods of the scenario.
+
+    The percentile is of the ordinary norms: the steps whose batch held no outlier (batch-mean
+    methods) or the clean examples (per-example methods). The scenario knows which these are;
+    with outliers on half the steps no blind rule (a multiple of the median, the spike rule of
+    core.replay) can tell them apart in a warm-up of 50 steps, and a percentile over all of
+    them sits near the outliers' norm.
+    """
     from core.engine import Engine
     from core.results import collect
 
     s = scenario.with_overrides({"train.steps": warmup, "train.eval_every": 1})
     engine = Engine(s, [Member(ClipConfig(method="none"), scenario.train.seed)], trace=True)
     result = collect(engine)
-    batch_norms = result.metric("grad_norm_pre")[:, 0]
+    batch_norms = result.metric("grad_norm_pre")[:, 0].astype(np.float64)
+    clean_steps = result.metric("batch_outliers")[:, 0] == 0
     assert engine.example_norms is not None
-    example_norms = engine.example_norms[0].ravel()
-    example_norms = example_norms[np.isfinite(example_norms)]
+    example_norms = engine.example_norms[0]  # (steps, B)
+    clean_examples = ~engine.dataset.outlier_train[engine.batch_indices(0)]
     out = []
     for c in scenario.clip:
         if c.spec.compares == BATCH_NORM:
-            values, batch = batch_norms[np.isfinite(batch_norms)], scenario.train.batch_size
+            values, ordinary, batch = batch_norms, clean_steps, scenario.train.batch_size
         elif c.spec.compares == EXAMPLE_NORM:
-            values, batch = example_norms, None
+            values, ordinary, batch = example_norms.ravel(), clean_examples.ravel(), None
         else:
             continue
-        threshold = float(np.percentile(values, percentile))
+        finite = np.isfinite(values)
+        kept = values[finite & ordinary]
+        if not kept.size:
+            continue
+        threshold = float(np.percentile(kept, percentile))
         out.append(
             Suggestion(
                 c.display_name,
                 c.method,
                 threshold,
-                float((values > threshold).mean()),
+                float((kept > threshold).mean()),
                 batch,
                 percentile,
+                left_out=int(finite.sum()) - len(kept),
+                seen=int(finite.sum()),
+                train_batch=scenario.train.batch_size,
+                kept=kept,
             )
         )
     return out
+
+
+def suggestion_line(suggestion: Suggestion, windows: Any = None) -> str:
+    """The suggestion in a sentence. Given the map's MethodWindows of its table, also whether it
+    lies inside the window it should (its batch size's; a per-example threshold: the common
+    window, else the training batch size's) and, if not, how often that window's edge would
+    have clipped the same warm-up values: the reason it lies outside."""
+    s = suggestion
+    if s.batch_size is not None:
+        what = f"norms of the {s.seen - s.left_out} of {s.seen} steps without outliers"
+        what += f" at batch size {s.batch_size}"
+    else:
+        what = f"per-example norms of the {s.seen - s.left_out} of {s.seen} clean examples"
+    text = (
+        f"suggested {s.label} threshold: {s.threshold:.3g}, the {s.percentile:g}th percentile "
+        f"of the unclipped warm-up {what} (clips {s.clip_rate:.0%} of them)."
+    )
+    window = _window_for(s, windows)
+    if window is None:
+        return text
+    name, lower, upper, open_lo, open_hi = window
+    span = _span(lower, upper, open_lo, open_hi)
+    if (lower <= s.threshold or open_lo) and (s.threshold <= upper or open_hi):
+        return text + f" It lies inside {name} ({span})."
+    if s.threshold > upper:
+        why = (
+            f"its upper edge {upper:.3g} would clip {s.clip_rate_at(upper):.0%} of the same "
+            "ordinary norms: the best thresholds there clip ordinary steps too, not only the "
+            "outliers"
+        )
+        return text + f" It lies above {name} ({span}): {why}."
+    why = (
+        f"its lower edge {lower:.3g} would clip only {s.clip_rate_at(lower):.0%} of the "
+        "same ordinary norms: the best thresholds there leave more of them alone"
+    )
+    return text + f" It lies below {name} ({span}): {why}."
+
+
+def _span(lo: float, hi: float, open_lo: bool, open_hi: bool) -> str:
+    low = f"<={lo:.3g}" if open_lo else f"{lo:.3g}"
+    high = f">={hi:.3g}" if open_hi else f"{hi:.3g}"
+    return low if lo == hi else f"{low} to {high}"
+
+
+def _window_for(s: Suggestion, windows: Any) -> tuple[str, float, float, bool, bool] | None:
+    """(name, lower, upper, open below, open above) of the window a suggestion is judged by."""
+    if windows is None:
+        return None
+    if s.batch_size is None and windows.common is not None:
+        lo, hi = windows.common
+        edges = (windows.common_at_lower_edge, windows.common_at_upper_edge)
+        return ("the common window of the map", lo, hi, *edges)
+    batch = s.batch_size if s.batch_size is not None else s.train_batch
+    for w in windows.windows:
+        if w.batch_size == batch and w.lower is not None and w.upper is not None:
+            name = f"batch size {w.batch_size}'s window in the map"
+            return (name, w.lower, w.upper, w.at_lower_edge, w.at_upper_edge)
+    return None

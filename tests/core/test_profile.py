@@ -11,10 +11,19 @@ import numpy as np
 import pytest
 import torch
 
+from core.analysis import MethodWindows, Window
 from core.data import build_dataset
 from core.engine import Engine, Member, init_seed
 from core.model import architecture, init_params
-from core.profile import NormProfile, norm_profile, profile_sentence
+from core.profile import (
+    NormProfile,
+    Suggestion,
+    norm_profile,
+    profile_sentence,
+    suggest_thresholds,
+    suggestion_line,
+)
+from core.results import collect
 from core.scenario import ClipConfig, Scenario, load_scenario, parse_scenario
 from tests.conftest import SCENARIOS
 
@@ -197,3 +206,35 @@ def test_engine_with_the_profiles_checkpoint_is_the_reference_start() -> None:
     engine = Engine(scenario, [Member(ClipConfig(method="none"), 0)])
     weight = init_params(engine.arch, [init_seed(scenario, 0)], F64)[0]
     np.testing.assert_allclose(weight[0].numpy(), engine.initial[0][0].double().numpy(), rtol=1e-6)
+
+
+def test_the_suggestion_is_a_percentile_of_the_ordinary_warm_up_norms() -> None:
+    # Reference: numpy's 90th percentile of the batch-mean norms of the warm-up steps whose batch
+    # held no outlier, from a separate unclipped run of the same 50 steps. On the coupling
+    # preset the earlier percentile over every step (9.66) sat among the outlier steps' norms.
+    scenario = load_scenario(SCENARIOS / "batch-size-coupling.toml")
+    suggestion = next(s for s in suggest_thresholds(scenario) if s.method == "global-norm")
+    warm = scenario.with_overrides({"train.steps": 50, "train.eval_every": 1})
+    run = collect(Engine(warm, [Member(ClipConfig(method="none"), 0)]))
+    norms = run.metric("grad_norm_pre")[:, 0].astype(np.float64)
+    clean = run.metric("batch_outliers")[:, 0] == 0
+    assert suggestion.threshold == pytest.approx(np.percentile(norms[clean], 90.0), rel=1e-12)
+    assert suggestion.seen - suggestion.left_out == int(clean.sum()) < 50
+    assert suggestion.threshold < 0.5 * float(np.median(norms[~clean]))  # below outlier steps
+
+
+def test_a_suggestion_outside_its_window_says_so_and_why() -> None:
+    kept = np.array([1.0, 1.5, 2.0, 2.5])
+    suggestion = Suggestion("global-norm", "global-norm", 2.45, 0.25, 32, 90.0, 6, 10, 32, kept)
+    window = Window(32, 0.3, 0.6, False, False, (0.3, 0.6))
+    windows = MethodWindows("global-norm", "global-norm", (window,), None, None, None, (), None)
+    line = suggestion_line(suggestion, windows)
+    # Every kept norm is above 0.6: the window's upper edge would clip all of them (by hand).
+    assert "It lies above batch size 32's window in the map (0.3 to 0.6)" in line
+    assert "would clip 100% of the same ordinary norms" in line
+    assert "4 of 10 steps without outliers" in line
+    inside = Window(32, 1.0, 10.0, False, True, (1.0, 10.0))
+    wide = MethodWindows("global-norm", "global-norm", (inside,), None, None, None, (), None)
+    assert suggestion_line(suggestion, wide).endswith(
+        "It lies inside batch size 32's window in the map (1 to >=10)."
+    )
