@@ -196,7 +196,7 @@ def test_a_map_point_means_outlier_share_and_pass_over_every_outlier_step_of_its
 
 
 @pytest.mark.slow
-def test_the_coupling_preset_couples_global_norm_to_the_batch_size_and_not_example_norm(
+def test_the_coupling_preset_couples_global_norm_to_the_batch_size_as_its_notes_say(
     tmp_path: Path,
 ) -> None:
     # Mirrors Brock et al. 2021 (section 4.1, appendix D; REFERENCES.md): the best clipping
@@ -212,6 +212,13 @@ def test_the_coupling_preset_couples_global_norm_to_the_batch_size_and_not_examp
         assert global_norm.lower_slope is not None and global_norm.lower_slope < -0.1
         assert global_norm.common is None, tolerance
         assert example_norm.common is not None, tolerance
+    # The preset's notes (tolerance 1 on the loss above the floor): both global-norm edges
+    # slide down "about as B^-1.3 and B^-0.9" (within 0.25 and 0.3), and example-norm's common
+    # window is "3.2 to 10" (the grid's 3.16 to 10).
+    results = analyse(rows, scenario.map.tolerance, loss_floor(scenario))
+    assert results["global-norm"].lower_slope == pytest.approx(-1.3, abs=0.25)
+    assert results["global-norm"].upper_slope == pytest.approx(-0.9, abs=0.3)
+    assert results["example-norm"].common == pytest.approx((3.1623, 10.0), rel=1e-4)
     # The seeds agree: every batch size's best global-norm threshold falls as B grows.
     smap = stability_map(rows, "global-norm")
     best = [smap.thresholds[int(np.argmin(row))] for row in smap.loss]
