@@ -140,17 +140,20 @@ def command_map(args: argparse.Namespace) -> int:
             f"{exc.reason}; the finished members are in {out}: continue with `{resume}`."
         ) from None
     progress.close()
-    results = analyse(rows, tolerance)
-    from core.profile import norm_profile, profile_sentence, suggest_thresholds
+    from core.tasks import floor_source, loss_floor
+
+    floor = loss_floor(scenario)
+    results = analyse(rows, tolerance, floor)
+    from core.profile import norm_profile, profile_sentence, suggest_thresholds, suggestion_line
 
     # JSON has no NaN or infinity: json_ready spells them null and "inf", and allow_nan=False
     # makes sure nothing else slips through as the invalid NaN token.
-    windows = json_ready(windows_json(results, tolerance))
-    write_text_atomic(out / "windows.json", json.dumps(windows, indent=2, allow_nan=False) + "\n")
+    found = json_ready(windows_json(results, tolerance, floor, floor_source(scenario)))
+    write_text_atomic(out / "windows.json", json.dumps(found, indent=2, allow_nan=False) + "\n")
     profile = norm_profile(scenario)
     suggestions = suggest_thresholds(scenario)
     profile_json = profile.as_json()
-    profile_json["suggestions"] = [s.__dict__ for s in suggestions]
+    profile_json["suggestions"] = [s.as_json() for s in suggestions]
     write_text_atomic(
         out / "profile.json", json.dumps(json_ready(profile_json), indent=2, allow_nan=False) + "\n"
     )
@@ -159,11 +162,7 @@ def command_map(args: argparse.Namespace) -> int:
         print(window_line(w))
     print(profile_sentence(profile))
     for s in suggestions:
-        where = f" at batch size {s.batch_size}" if s.batch_size else ""
-        print(
-            f"suggested {s.label} threshold: {s.threshold:.3g}, the {s.percentile:g}th percentile "
-            f"of unclipped warm-up norms{where} (clips {s.clip_rate:.0%} of them)."
-        )
+        print(suggestion_line(s, results.get(s.label)))
     print(f"wrote map.csv, windows.json and profile.json to {out}")
     return EXIT_OK
 

@@ -3,8 +3,9 @@
 Per-example methods turn the layer inputs a and output gradients dz into weights on each
 example (or each example's unit) so that the clipped gradient is the re-weighted sum
 (dz * w)^T a. Batch-mean methods turn the mean gradient into coefficients that multiply it.
-Each returns the quantity its rule watches (the largest compared value of the step) and the
-share of compared items that were clipped.
+A batch-mean kernel returns the quantity its rule watches (the largest compared value of the
+step); a per-example kernel returns every compared value, which adaptive rules follow (see
+core/rules.py). Both give the share of compared items that were clipped.
 
 core/methods.py names, per method, the kernel here that the engine calls: a batch-mean kernel
 is `(BatchContext, level) -> (coefficient, watched, share)`, a per-example kernel is

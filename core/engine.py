@@ -58,6 +58,8 @@ __all__ = [
 EXPLODE_FACTOR = 1e4
 # Exponential weight of the running estimates behind noise_scale, per logged step.
 NOISE_SCALE_ALPHA = 0.95
+# The split statistics an engine with outlier_steps=True averages over every outlier step.
+OUTLIER_MEANS = ("outlier_share", "outlier_pass")
 
 
 @dataclass
@@ -105,6 +107,16 @@ class _Group:
         values = watched.tolist()
         return torch.tensor(
             [r.level(v) for r, v in zip(self.rules, values, strict=True)], dtype=watched.dtype
+        )
+
+    def example_levels(self, values: torch.Tensor) -> torch.Tensor:
+        """This step's thresholds for a per-example group, given every compared value (k, n)."""
+        if not self.adaptive:
+            return self.thresholds
+        rows = values.double().numpy()
+        return torch.tensor(
+            [r.level_of_examples(row) for r, row in zip(self.rules, rows, strict=True)],
+            dtype=values.dtype,
         )
 
 
@@ -193,8 +205,13 @@ class StackPass:
         y: torch.Tensor,
         outlier: torch.Tensor,
         detail: bool,
+        split: bool = False,
     ) -> PassResult:
-        """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views."""
+        """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views.
+
+        `detail` adds every statistic of a logged step; `split` alone adds only the outlier
+        share and pass-through (cheap: the outlier examples are gathered, not masked).
+        """
         arch = self.arch
         K, B = x.shape[:2]
         # dz is taken of the reduced loss (mean or sum), so plain sums of dz^T a are the batch
@@ -211,10 +228,12 @@ class StackPass:
         # Between logged steps a stack of batch-mean methods never looks at per-example norms.
 
         maybe_nonfinite = self.data_nonfinite and self.any_per_example
+        dropped: torch.Tensor | None = None  # (K, B) examples dropped as non-finite
         if norms is not None and maybe_nonfinite and not bool(torch.isfinite(norms).all()):
             # Per-example methods drop an example whose gradient is not finite (its norm is
             # above any threshold); batch-mean methods see the non-finite mean, as in practice.
             keep = (torch.isfinite(norms) | ~self.per_example[:, None]).unsqueeze(-1)
+            dropped = ~keep.squeeze(-1)
             inputs = [torch.where(keep, a, 0.0) for a in inputs]
             dz = [torch.where(keep, d, 0.0) for d in dz]
             norms = torch.where(keep.squeeze(-1), norms, 0.0)
@@ -225,6 +244,7 @@ class StackPass:
         rows_w: list[torch.Tensor] | None = None
         bias_w: list[torch.Tensor] | None = None
         batch_groups = []
+        applied: list[tuple[_Group, torch.Tensor]] = []  # each group's level on this step
         for g in self.groups:
             if not g.spec.per_example:
                 batch_groups.append(g)
@@ -240,10 +260,18 @@ class StackPass:
             sub_dz = [g.take(d) for d in dz]
             assert norms is not None  # computed whenever a per-example method is present
             weights, seen, level = self._example_weights(
-                g, sub_inputs, sub_dz, g.take(norms), params, 1.0 / reduce, detail
+                g,
+                sub_inputs,
+                sub_dz,
+                g.take(norms),
+                params,
+                1.0 / reduce,
+                detail,
+                None if dropped is None else g.take(dropped),
             )
             watched, levels = g.put(watched, seen), g.put(levels, level)
             share = g.put(share, weights.clipped_share)
+            applied.append((g, level))
             for layer in range(arch.layers):
                 rows = weights.rows[layer]
                 rows_w[layer] = g.put(
@@ -251,9 +279,16 @@ class StackPass:
                 )
                 bias_w[layer] = g.put(bias_w[layer], weights.bias[layer])
 
-        flat, parts = self._weighted_sums(inputs, dz, rows_w, bias_w, outlier, detail)
+        # The applied gradient is the same sum whether the step is logged or not, so logging
+        # never changes a trajectory; logged steps add the clean and outlier parts beside it.
+        flat = self._gradient_sum(inputs, dz, rows_w, bias_w)
+        light = split and not detail and bool(outlier.any())
+        parts = None
+        if detail or light:
+            # A copy: batch-mean clipping below scales `flat` in place.
+            parts = self._parts(inputs, dz, rows_w, bias_w, outlier, flat.clone(), plain=detail)
 
-        coef_all = torch.ones_like(flat) if detail else None
+        coef_all = torch.ones_like(flat) if parts is not None else None
         for g in batch_groups:
             sub = g.take(flat)
             level = g.thresholds
@@ -261,6 +296,7 @@ class StackPass:
                 unclipped = torch.full_like(g.thresholds, math.inf)
                 level = g.levels(self._batch_coefs(g, sub, params, unclipped)[1])
             coef, seen, clipped = self._batch_coefs(g, sub, params, level)
+            applied.append((g, level))
             watched, levels, share = (
                 g.put(watched, seen),
                 g.put(levels, level),
@@ -271,8 +307,15 @@ class StackPass:
                 coef_all = g.put(coef_all, coef.expand_as(sub))
 
         detail_stats = None
-        if parts is not None and coef_all is not None and sq is not None:
-            detail_stats = self._detail(flat, parts, coef_all, sq, outlier)
+        if parts is not None and coef_all is not None:
+            if detail:
+                assert norms is not None and sq is not None and parts[2] is not None
+                without = self._without_outliers(
+                    inputs, dz, norms, params, outlier, parts[2], applied, reduce
+                )
+                detail_stats = self._detail(flat, parts, coef_all, sq, outlier, without)
+            else:
+                detail_stats = self._outlier_detail(parts, coef_all, outlier)
 
         if self.noisy:
             flat = flat.clone()
@@ -304,6 +347,7 @@ class StackPass:
         params: list[torch.Tensor],
         unreduce: float,
         detail: bool,
+        dropped: torch.Tensor | None = None,
     ) -> tuple[clipping.ExampleWeights, torch.Tensor, torch.Tensor]:
         context = clipping.ExampleContext(
             inputs=inputs,
@@ -318,9 +362,18 @@ class StackPass:
             share=detail,
         )
         compared: clipping.Compared = g.spec.function()(context)
-        # The watched quantity feeds adaptive rules and spike skipping only; skip it otherwise.
-        seen = compared.watch().amax(dim=1) if g.adaptive or self.any_skip else g.unwatched
-        level = g.levels(seen)
+        # Adaptive rules follow every compared value; spike skipping watches the largest.
+        # Neither is computed when nothing needs it.
+        seen, level = g.unwatched, g.thresholds
+        if g.adaptive or self.any_skip:
+            values = compared.watch()
+            seen = values.amax(dim=1)
+            if g.adaptive:
+                if dropped is not None:  # a dropped example's zeroed value is no measurement
+                    k, n = values.shape
+                    gone = dropped.reshape(k, n, -1).any(dim=2)
+                    values = torch.where(gone, math.nan, values)
+                level = g.example_levels(values)
         return compared.weigh(level), seen, level
 
     def _batch_coefs(
@@ -336,24 +389,93 @@ class StackPass:
         result: clipping.BatchResult = g.spec.function()(context, level)
         return result
 
-    def _weighted_sums(
+    def _parts(
         self,
         inputs: list[torch.Tensor],
         dz: list[torch.Tensor],
         rows_w: list[torch.Tensor] | None,
         bias_w: list[torch.Tensor] | None,
         outlier: torch.Tensor,
-        detail: bool,
-    ) -> tuple[torch.Tensor, list[torch.Tensor] | None]:
-        """The weighted batch gradient (K, P); on logged steps also four flat parts.
+        weighted_sum: torch.Tensor,
+        plain: bool,
+    ) -> list[torch.Tensor | None]:
+        """(clean weighted, outlier weighted, clean plain, outlier plain, whole plain) flat
+        (K, P) parts of the batch gradient before batch-mean clipping; the plain sums only when
+        `plain`. The whole plain sum is the very tensor batch-mean clipping compares, so the
+        logged pre-clip norm is the norm the clipping decision saw.
+
+        The outliers are few, so their parts are sums over the gathered outlier examples and
+        the clean parts are the whole sums less them. Non-finite outlier parts would make that
+        difference NaN; then the masked split below is used.
+        """
+        weighted = rows_w is not None and bias_w is not None
+        whole_plain = None
+        if plain:
+            whole_plain = self._gradient_sum(inputs, dz, None, None) if weighted else weighted_sum
+        if not bool(outlier.any()):
+            zeros = torch.zeros_like(weighted_sum)
+            return [weighted_sum, zeros, whole_plain, zeros, whole_plain]
+        out_w, out_u = self._outlier_sums(inputs, dz, rows_w, bias_w, outlier)
+        # Finite data cannot make a finite model's outlier parts non-finite.
+        if self.data_nonfinite and not (
+            bool(torch.isfinite(out_w).all()) and bool(torch.isfinite(out_u).all())
+        ):
+            return [*self._split_sums(inputs, dz, rows_w, bias_w, outlier), whole_plain]
+        clean_plain = None if whole_plain is None else whole_plain - out_u
+        return [weighted_sum - out_w, out_w, clean_plain, out_u, whole_plain]
+
+    def _outlier_sums(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        rows_w: list[torch.Tensor] | None,
+        bias_w: list[torch.Tensor] | None,
+        outlier: torch.Tensor,
+    ) -> tuple[torch.Tensor, torch.Tensor]:
+        """Weighted and plain flat sums (K, P) over each member's outlier examples alone."""
+        K = outlier.shape[0]
+        member, position = torch.nonzero(outlier, as_tuple=True)  # (n,) each: the outliers
+
+        def pick(t: torch.Tensor) -> torch.Tensor:
+            picked = t.expand(K, *t.shape[1:])[member, position]
+            return picked.unsqueeze(-1) if picked.dim() == 1 else picked  # (n, width)
+
+        def per_member(values: torch.Tensor) -> torch.Tensor:
+            """Sum the outliers' rows (n, ...) into their members' (K, ...)."""
+            return values.new_zeros(K, *values.shape[1:]).index_add_(0, member, values)
+
+        weighted = rows_w is not None and bias_w is not None
+        parts: list[list[torch.Tensor]] = [[], []]
+        for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
+            a_o, d_o = pick(a), pick(d)
+            kinds = [(d_o, d_o)]
+            if weighted:  # without per-example weights the weighted part is the plain one
+                assert rows_w is not None and bias_w is not None
+                d_w_rows = d_o * pick(rows_w[layer])
+                d_w_bias = d_w_rows if self.scalar_weights else d_o * pick(bias_w[layer])
+                kinds.insert(0, (d_w_rows, d_w_bias))
+            for kind, (d_rows, d_bias) in enumerate(kinds):
+                outer = d_rows.unsqueeze(2) * a_o.unsqueeze(1)  # (n, out, in)
+                parts[kind].append(per_member(outer).flatten(1))
+                parts[kind].append(per_member(d_bias))
+        plain = torch.cat(parts[0], dim=1)
+        return (plain, plain) if not weighted else (plain, torch.cat(parts[1], dim=1))
+
+    def _split_sums(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        rows_w: list[torch.Tensor] | None,
+        bias_w: list[torch.Tensor] | None,
+        outlier: torch.Tensor,
+    ) -> list[torch.Tensor]:
+        """Four flat (K, P) parts of the weighted batch gradient, masked example by example.
 
         The parts are (clean weighted, outlier weighted, clean plain, outlier plain). They are
         split with torch.where, not by multiplying with a 0/1 mask, so that an outlier with an
         infinite input cannot turn the clean part into NaN.
         """
         weighted = rows_w is not None and bias_w is not None
-        if not detail:
-            return self._gradient_sum(inputs, dz, rows_w, bias_w), None
         split = bool(outlier.any())
         sides = ((~outlier).unsqueeze(-1), outlier.unsqueeze(-1)) if split else (None,)
         # pieces[side][kind]: kind 0 weighted, 1 plain (only when weights exist)
@@ -389,7 +511,7 @@ class StackPass:
             out_w, out_u = flats[1][0], flats[1][-1]
         else:
             out_w = out_u = torch.zeros_like(clean_w)
-        return clean_w + out_w if split else clean_w.clone(), [clean_w, out_w, clean_u, out_u]
+        return [clean_w, out_w, clean_u, out_u]
 
     def _gradient_sum(
         self,
@@ -411,29 +533,130 @@ class StackPass:
             torch.sum(d_bias, dim=1, out=views[2 * layer + 1])
         return flat
 
+    def _without_outliers(
+        self,
+        inputs: list[torch.Tensor],
+        dz: list[torch.Tensor],
+        norms: torch.Tensor,
+        params: list[torch.Tensor],
+        outlier: torch.Tensor,
+        clean_sum: torch.Tensor,
+        applied: list[tuple[_Group, torch.Tensor]],
+        reduce: float,
+    ) -> torch.Tensor:
+        """The clipped gradient (K, P) of the same step with the outliers taken out of the batch,
+        each member clipped at the level it applied on this step (logged steps only).
+
+        Taken out, not zeroed: under the mean reduction the batch mean is over the clean examples
+        left, and a compared unit (an example, or a group of m) keeps its clean examples and
+        averages over them; units left empty drop out of the average over units.
+        """
+        B = outlier.shape[1]
+        clean = ~outlier
+        n_clean = clean.sum(dim=1).to(self.dtype)
+        mean = self.reduction == "mean"
+        base = clean_sum * (B / n_clean.clamp(min=1.0))[:, None] if mean else clean_sum.clone()
+        without = base.clone()
+        for g, level in applied:
+            if not g.spec.per_example:
+                sub = g.take(base)
+                coef = self._batch_coefs(g, sub, params, level)[0]
+                without = g.put(without, sub * coef)
+                continue
+            sub_clean = g.take(clean)
+            k = sub_clean.shape[0]
+            m = g.microbatch or 1  # examples per compared unit
+            per_unit = sub_clean.reshape(k, B // m, m).to(self.dtype).sum(dim=2)  # (k, units)
+            units_left = (per_unit > 0).sum(dim=1).to(self.dtype).clamp(min=1.0)
+            # Scaling each clean example by m / (its unit's clean count) makes the kernel see
+            # each unit's mean over the examples it keeps.
+            spread = (m / per_unit.clamp(min=1.0)).repeat_interleave(m, dim=1)
+            scale = torch.where(sub_clean, spread, 0.0)
+            sub_inputs = [torch.where(sub_clean[..., None], g.take(a), 0.0) for a in inputs]
+            sub_dz = [torch.where(sub_clean[..., None], g.take(d), 0.0) for d in dz]
+            context = clipping.ExampleContext(
+                inputs=sub_inputs,
+                dz=[d * scale[..., None] for d in sub_dz],
+                norms=torch.where(sub_clean, g.take(norms) * scale, 0.0),
+                member_params=functools.partial(_member_rows, g, params),
+                unreduce=1.0 / reduce,
+                layers=self.arch.layers,
+                clipped_layers=self.clipped_layers,
+                eps=g.eps,
+                microbatch=g.microbatch,
+                share=False,
+            )
+            weights = g.spec.function()(context).weigh(level)
+            # The weights apply to the plain clean gradients: under the mean reduction the
+            # average over the units left (each unit's mean, times units / units left), under
+            # the sum reduction their sum.
+            factor = scale * ((B // m) / units_left)[:, None] if mean else sub_clean.to(self.dtype)
+            rows = [d * factor[..., None] for d in sub_dz]
+            without = g.put(without, self._flat_sum(sub_inputs, rows, weights))
+        return without
+
+    def _flat_sum(
+        self, inputs: list[torch.Tensor], dz: list[torch.Tensor], weights: clipping.ExampleWeights
+    ) -> torch.Tensor:
+        """sum_i (dz_i * w_i) a_i^T per layer into a flat (k, P) gradient, weights per layer."""
+        flat = torch.empty(dz[0].shape[0], self.layout.total, dtype=self.dtype)
+        views = self.layout.views(flat)
+        for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
+            views[2 * layer].copy_(bmm((d * weights.rows[layer]).transpose(1, 2), a))
+            torch.sum(d * weights.bias[layer].unsqueeze(-1), dim=1, out=views[2 * layer + 1])
+        return flat
+
+    def _outlier_detail(
+        self, parts: list[torch.Tensor | None], coef: torch.Tensor, outlier: torch.Tensor
+    ) -> dict[str, torch.Tensor]:
+        """The outlier share and pass-through alone (see `_detail`), in few operations: this
+        runs on every outlier step of a map."""
+        clean_w, out_w, _, out_u, _ = parts
+        assert clean_w is not None and out_w is not None and out_u is not None
+        sizes = torch.linalg.vector_norm(torch.stack((coef * out_w, coef * clean_w, out_u)), dim=2)
+        n_out = outlier.sum(dim=1).to(self.dtype)
+        return {
+            # share: |o| / (|o| + |c|); NaN where nothing passed at all, counted nowhere
+            OUTLIER_MEANS[0]: sizes[0] / (sizes[0] + sizes[1]),
+            OUTLIER_MEANS[1]: sizes[0] / sizes[2],
+            "batch_outliers": n_out,
+        }
+
     def _detail(
         self,
         clipped: torch.Tensor,
-        parts: list[torch.Tensor],
+        parts: list[torch.Tensor | None],
         coef: torch.Tensor,
         sq: torch.Tensor,
         outlier: torch.Tensor,
+        without: torch.Tensor,
     ) -> dict[str, torch.Tensor]:
-        _, out_w, clean_u, out_u = parts
+        clean_w, out_w, clean_u, out_u, whole = parts
+        assert clean_w is not None and out_w is not None
+        assert clean_u is not None and out_u is not None and whole is not None
         norm = functools.partial(torch.linalg.vector_norm, dim=1)
-        pre = norm(clean_u + out_u)
+        pre = norm(whole)
         post = norm(clipped)
         out_after = norm(coef * out_w)
+        clean_after = norm(coef * clean_w)
         n_out = outlier.sum(dim=1).to(self.dtype)
+        n_clean = outlier.shape[1] - n_out
+        both = out_after + clean_after
+        shift = norm(clipped - without) / norm(without)
+        clean_norm = norm(clean_u)
         return {
             "grad_norm_pre": pre,
             "grad_norm_post": post,
             "clip_coef": post / pre,
-            "outlier_share": torch.where(n_out > 0, out_after / post, 0.0),
+            # |o| / (|o| + |c|) of the clipped outlier and clean parts: in [0, 1] by the
+            # triangle inequality, and the clean share is 1 minus it.
+            "outlier_share": torch.where((n_out > 0) & (both > 0), out_after / both, 0.0),
             "outlier_pass": torch.where(n_out > 0, out_after / norm(out_u), math.nan),
+            "outlier_shift": torch.where(n_out > 0, torch.where(n_clean > 0, shift, math.nan), 0.0),
+            "clean_cosine": (clipped * clean_u).sum(dim=1) / (post * clean_norm),
             "clean_sum": clean_u,
             "clean_sq_norms": torch.where(outlier, 0.0, sq),
-            "n_clean": (~outlier).sum(dim=1).to(self.dtype),
+            "n_clean": n_clean,
             "batch_outliers": n_out,
         }
 
@@ -451,6 +674,7 @@ class Engine:
         dtype: torch.dtype = torch.float32,
         trace: bool = False,
         keep_norms: bool = False,
+        outlier_steps: bool = False,
     ) -> None:
         if not members:
             raise ValueError("an engine needs at least one member")
@@ -493,7 +717,14 @@ class Engine:
         self.theta = ParamLayout.flatten(start)
         self.params = self.layout.views(self.theta)
         self.initial = [p.clone() for p in start]
-        self.optimizer = _make_optimizer(scenario, self.theta, self.lr)
+        # torch.optim steps blocks of consecutive rows of theta (views). A member that may skip a
+        # step has a block of its own: on a skipped step its block gets no gradient, and torch.optim
+        # leaves a parameter without one untouched, its moments and its step count (Adam's bias
+        # correction) included. The other members share blocks, so their update stays batched.
+        skips = [m.clip.on_spike == "skip" for m in members]
+        self.blocks = _blocks(skips)
+        self.block_params = [self.theta[a:b] for a, b in self.blocks]
+        self.optimizer = _make_optimizer(scenario, self.block_params, self.lr)
         self.grad_pass = StackPass(
             self.arch, members, train.loss_reduction, scenario.model.exclude_head, dtype
         )
@@ -511,6 +742,13 @@ class Engine:
         self.diverged_at: list[int | None] = [None] * K
         self._noise_tr = torch.zeros(K, dtype=torch.float64)
         self._noise_g2 = torch.zeros(K, dtype=torch.float64)
+        # With outlier_steps, every step whose batch holds an outlier is measured (not only the
+        # logged ones) and its outlier share and pass-through are summed per member: a map's
+        # means over the outlier steps then count every such step. It costs two small sums over
+        # the gathered outlier examples on those steps.
+        self.outlier_steps = outlier_steps
+        self._outlier_sums = torch.zeros(len(OUTLIER_MEANS), K, dtype=torch.float64)
+        self._outlier_counts = torch.zeros(len(OUTLIER_MEANS), K, dtype=torch.float64)
 
     def batch_indices(self, member: int) -> np.ndarray:
         """(steps, B) rows of x_train that a member trained on."""
@@ -536,7 +774,7 @@ class Engine:
             x, y, outlier = x.expand(K, -1, -1), y.expand(K, -1), outlier.expand(K, -1)
         else:
             x, y, outlier = x[self.member_slot], y[self.member_slot], outlier[self.member_slot]
-        result = self.grad_pass.run(self.params, x, y, outlier, logged)
+        result = self.grad_pass.run(self.params, x, y, outlier, logged, self.outlier_steps)
         self._last_outlier = outlier
         if self.example_norms is not None and result.norms is not None:
             self.example_norms[:, step - 1] = result.norms.double().numpy()
@@ -563,6 +801,8 @@ class Engine:
 
         before = self.theta.detach().clone() if logged else None
         self._apply(result.grads, frozen)
+        if self.outlier_steps and result.detail is not None:
+            self._add_outlier_step(result.detail)
 
         if not logged:
             return None
@@ -570,22 +810,58 @@ class Engine:
 
     def _apply(self, grads: torch.Tensor, frozen: torch.Tensor | None) -> None:
         """One optimizer step; frozen members (diverged or skipping) keep parameters and state."""
-        theta = self.theta
         if frozen is None or not bool(frozen.any()):
-            theta.grad = grads
+            for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+                param.grad = grads[a:b]
             self.optimizer.step()
             return
-        keep = frozen.unsqueeze(1)
-        theta.grad = torch.where(keep, 0.0, grads)
-        saved = theta.detach().clone()
-        state = self.optimizer.state[theta]
-        saved_state = {k: v.clone() for k, v in state.items() if _stacked(v, theta)}
+        rows = frozen.tolist()
+        partial = []
+        for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+            mine = rows[a:b]
+            if all(mine):  # a whole block frozen: torch.optim skips it, state and all
+                param.grad = None
+            elif any(mine):  # diverged members among live ones: step, then put their rows back
+                keep = frozen[a:b].unsqueeze(1)
+                param.grad = torch.where(keep, 0.0, grads[a:b])
+                state = self.optimizer.state[param]
+                saved = {k: v.clone() for k, v in state.items() if _stacked(v, param)}
+                partial.append((param, keep, param.detach().clone(), saved))
+            else:
+                param.grad = grads[a:b]
         self.optimizer.step()
-        theta.data.copy_(torch.where(keep, saved, theta.data))  # in place: the views stay valid
-        for key, value in state.items():
-            if _stacked(value, theta):
-                old = saved_state.get(key, torch.zeros_like(value))
-                value.copy_(torch.where(keep, old, value))
+        for param, keep, saved_rows, saved_state in partial:
+            param.copy_(torch.where(keep, saved_rows, param))  # in place: the views stay valid
+            for key, value in self.optimizer.state[param].items():
+                if _stacked(value, param):
+                    old = saved_state.get(key, torch.zeros_like(value))
+                    value.copy_(torch.where(keep, old, value))
+
+    def _add_outlier_step(self, detail: dict[str, torch.Tensor]) -> None:
+        values = torch.stack([detail[name] for name in OUTLIER_MEANS]).double()  # (2, K)
+        counted = (detail["batch_outliers"] > 0) & self.alive & torch.isfinite(values)
+        self._outlier_sums += torch.where(counted, values, 0.0)
+        self._outlier_counts += counted
+
+    def outlier_step_means(self) -> dict[str, np.ndarray]:
+        """Per member (K,), the mean of each split statistic over every step whose batch held
+        an outlier while the member was alive (NaN: no such step); needs outlier_steps=True."""
+        if not self.outlier_steps:
+            raise RuntimeError("outlier_step_means needs an engine made with outlier_steps=True")
+        means = (self._outlier_sums / self._outlier_counts).numpy()
+        return {name: means[i] for i, name in enumerate(OUTLIER_MEANS)}
+
+    def optimizer_state(self, member: int) -> dict[str, torch.Tensor]:
+        """One member's optimizer state: its rows of the moments, and its block's step count."""
+        for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+            if a <= member < b:
+                state = self.optimizer.state[param]
+                return {
+                    k: v[member - a] if _stacked(v, param) else v
+                    for k, v in state.items()
+                    if isinstance(v, torch.Tensor)
+                }
+        raise IndexError(f"no member {member} in a stack of {len(self.members)}")
 
     def _record(
         self,
@@ -600,9 +876,6 @@ class Engine:
         val_loss, val_metric = self.evaluator(self.params)
         delta = self.theta.detach() - before
         update_norm = torch.linalg.vector_norm(delta, dim=1)
-        clean_sum = detail["clean_sum"]
-        clean_norm = torch.linalg.vector_norm(clean_sum, dim=1)
-        cosine = -(delta * clean_sum).sum(dim=1) / (update_norm * clean_norm)
         if result.norms is None:
             raise RuntimeError("a logged step must carry per-example norms")
         norms = result.norms.double()
@@ -620,7 +893,8 @@ class Engine:
             "clipped_share": result.clipped_share,
             "outlier_share": detail["outlier_share"],
             "outlier_pass": detail["outlier_pass"],
-            "clean_cosine": cosine,
+            "outlier_shift": detail["outlier_shift"],
+            "clean_cosine": detail["clean_cosine"],
             "update_norm": update_norm,
             "example_norm_p50": quantiles[0],
             "example_norm_p90": quantiles[1],
@@ -674,6 +948,10 @@ def init_seed(scenario: Scenario, seed: int) -> int:
     return int(np.random.SeedSequence([scenario.model.init_seed, seed]).generate_state(1)[0])
 
 
+def _member_rows(g: _Group, params: list[torch.Tensor]) -> list[torch.Tensor]:
+    return [g.take(p) for p in params]
+
+
 def _rows(mask: torch.Tensor, like: torch.Tensor) -> torch.Tensor:
     return mask.reshape(-1, *([1] * (like.dim() - 1)))
 
@@ -690,13 +968,38 @@ def _lr_factor(scaling: str, batch: int, reference: int) -> float:
     return 1.0
 
 
-def _make_optimizer(scenario: Scenario, theta: torch.Tensor, lr: float) -> torch.optim.Optimizer:
+def _blocks(skips: list[bool]) -> list[tuple[int, int]]:
+    """Row ranges [a, b) of theta that step together: each skipping member alone, the runs of
+    members in between as one block each."""
+    blocks: list[tuple[int, int]] = []
+    start = 0
+    for i, skip in enumerate(skips):
+        if skip:
+            if start < i:
+                blocks.append((start, i))
+            blocks.append((i, i + 1))
+            start = i + 1
+    if start < len(skips):
+        blocks.append((start, len(skips)))
+    return blocks
+
+
+def _make_optimizer(
+    scenario: Scenario, params: list[torch.Tensor], lr: float
+) -> torch.optim.Optimizer:
     t = scenario.train
-    # All of these are element-wise, so one optimizer over the stacked rows is exact per member.
+    # All of these are element-wise, so stepping stacked rows is exact per member. The
+    # single-tensor code path (foreach=False) computes each element the same way whatever the
+    # block, so a member's numbers do not depend on how the stack is cut into blocks.
     if t.optimizer == "sgd":
         return torch.optim.SGD(
-            [theta], lr=lr, momentum=t.momentum, nesterov=t.nesterov, weight_decay=t.weight_decay
+            params,
+            lr=lr,
+            momentum=t.momentum,
+            nesterov=t.nesterov,
+            weight_decay=t.weight_decay,
+            foreach=False,
         )
     if t.optimizer == "adam":
-        return torch.optim.Adam([theta], lr=lr, weight_decay=t.weight_decay)
-    return torch.optim.AdamW([theta], lr=lr, weight_decay=t.weight_decay)
+        return torch.optim.Adam(params, lr=lr, weight_decay=t.weight_decay, foreach=False)
+    return torch.optim.AdamW(params, lr=lr, weight_decay=t.weight_decay, foreach=False)

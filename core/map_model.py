@@ -24,6 +24,7 @@ from core.entry_model import (
 from core.maps import Chunk, plan, sort_table
 from core.profile import NormProfile
 from core.scenario import Scenario
+from core.tasks import loss_floor
 
 
 @dataclass
@@ -68,7 +69,7 @@ class MapModel(Observable):
     def restore(self, rows: list[dict[str, Any]], profile: NormProfile | None) -> None:
         """A finished map of the current scenario (from the cache)."""
         self.rows = sort_table(self.scenario, rows)
-        self.results = analyse(self.rows, self.scenario.map.tolerance)
+        self.results = analyse(self.rows, self.scenario.map.tolerance, loss_floor(self.scenario))
         self.results_scenario = self.scenario
         self.profile, self.results_hash = profile, self.scenario.hash()
         self.members_total = self.members_done = len(self.rows)
@@ -107,7 +108,9 @@ class MapModel(Observable):
     def _finish_if_complete(self) -> None:
         if self.chunks_left == 0 and self._pending_profile is not None:
             self.rows = sort_table(self.scenario, self.rows)
-            self.results = analyse(self.rows, self.scenario.map.tolerance)
+            self.results = analyse(
+                self.rows, self.scenario.map.tolerance, loss_floor(self.scenario)
+            )
             self.results_scenario = self.scenario
             self.profile = self._pending_profile
             self.results_hash = self.scenario.hash()

@@ -50,7 +50,7 @@ class Point:
 
     def key(self, scenario: Scenario) -> tuple[str, str, int, int]:
         label = scenario.clip[self.clip_index].display_name
-        return (label, _threshold_text(self.threshold), self.batch_size, self.seed)
+        return (label, threshold_text(self.threshold), self.batch_size, self.seed)
 
 
 @dataclass(frozen=True)
@@ -98,7 +98,11 @@ def run_chunk(scenario_text: str, chunk: Chunk) -> list[dict[str, Any]]:
 
     scenario = loads_scenario(scenario_text, "<map>")
     members = members_of(scenario, chunk)
-    result = collect(Engine(scenario, members, chunk.batch_size))
+    engine = Engine(scenario, members, chunk.batch_size, outlier_steps=True)
+    result = collect(engine)
+    # Outlier share and pass-through: means over every step whose batch held an outlier, not
+    # only the logged ones (the engine measures those steps for this).
+    outlier_means = engine.outlier_step_means()
     clean_steps = result.metric("batch_outliers") == 0  # (logged, K)
     rows = []
     for i, (point, member) in enumerate(zip(chunk.points, members, strict=True)):
@@ -115,8 +119,8 @@ def run_chunk(scenario_text: str, chunk: Chunk) -> list[dict[str, Any]]:
                 "diverged": result.diverged_at[i] is not None,
                 "clipped_share": single(_mean(share)),
                 "clean_clipped_share": single(_mean(clean_share)),
-                "outlier_share": single(_mean(result.metric("outlier_share")[:, i])),
-                "outlier_pass": single(_mean(result.metric("outlier_pass")[:, i])),
+                "outlier_share": single(float(outlier_means["outlier_share"][i])),
+                "outlier_pass": single(float(outlier_means["outlier_pass"][i])),
             }
         )
     return rows
@@ -127,14 +131,15 @@ def _mean(values: np.ndarray) -> float:
     return float(finite.mean()) if finite.size else math.nan
 
 
-def _threshold_text(threshold: float) -> str:
+def threshold_text(threshold: float) -> str:
+    """A grid threshold as map.csv writes it (every digit; empty for method none)."""
     return "" if math.isnan(threshold) else repr(float(threshold))
 
 
 def row_key(row: dict[str, Any]) -> tuple[str, str, int, int]:
     return (
         str(row["label"]),
-        _threshold_text(float(row["threshold"])),
+        threshold_text(float(row["threshold"])),
         int(row["batch_size"]),
         int(row["seed"]),
     )

@@ -22,6 +22,7 @@ GRADIENT_METRICS = (
     "clipped_share",
     "outlier_share",
     "outlier_pass",
+    "outlier_shift",
     "clean_cosine",
     "update_norm",
     "example_norm_p50",

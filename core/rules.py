@@ -1,8 +1,20 @@
 """Threshold rules: how each step's threshold follows the quantity a method compares with it.
 
-A rule watches one number per step (the largest compared quantity: the batch-mean norm for
-global-norm, the largest example's norm for example-norm, the largest unit ratio for AGC) and
-gives the threshold to apply on that step; `math.inf` means "do not clip yet".
+Batch-mean methods: `level(watched)` takes one number per step (the batch-mean norm for
+global-norm, the largest tensor norm or unit ratio for the others) and gives the threshold to
+apply on that step; `math.inf` means "do not clip yet". `levels` replays `level` on a whole log
+(core/replay.py relies on the two agreeing to the bit).
+
+Per-example methods: `level_of_examples(values)` takes every compared value of the step (each
+example's norm, each group's norm, each example's largest unit ratio) and follows their
+distribution, not the batch's largest: a threshold set from the largest of B values would sit
+higher the larger B is, and bring the batch-size coupling back. Percentile takes the p-th
+percentile of the last EXAMPLE_WINDOW values (the current step's included), a bounded window so
+that a step costs the same at any batch size and the level follows training; ema keeps k times
+an exponential average, per step, of the step's mean value (values above the level enter at the
+level); zscore clips above mean + z * std of the examples, mean and variance being exponential
+averages per step of the step's values (clipped at the level). The warm-up counts steps for
+both kinds of rule.
 """
 
 from __future__ import annotations
@@ -13,6 +25,14 @@ import numpy as np
 
 from core.scenario import ClipConfig
 from core.wavelet import PrefixOrder
+
+# Per-example percentile rules keep this many of the most recent compared values.
+EXAMPLE_WINDOW = 1024
+
+
+def _finite(values: np.ndarray) -> np.ndarray:
+    values = np.asarray(values, dtype=np.float64).ravel()
+    return values[np.isfinite(values)]
 
 
 class FixedRule:
@@ -26,6 +46,9 @@ class FixedRule:
         """What `level` returns at every step of `watched`."""
         return np.full(len(watched), float(self.threshold))
 
+    def level_of_examples(self, values: np.ndarray) -> float:
+        return self.threshold
+
 
 class PercentileRule:
     """AutoClip: the p-th percentile of the history of watched norms, current step included."""
@@ -34,6 +57,28 @@ class PercentileRule:
         self.percentile = percentile
         self.warmup = warmup
         self.history: list[float] = []
+        self._recent = np.empty(EXAMPLE_WINDOW)  # per-example: a ring of the latest values
+        self._filled = 0
+        self._next = 0
+        self._steps = 0
+
+    def level_of_examples(self, values: np.ndarray) -> float:
+        """The p-th percentile of the last EXAMPLE_WINDOW finite values, this step's included."""
+        finite = _finite(values)[-EXAMPLE_WINDOW:]
+        if finite.size:
+            self._steps += 1
+            end = self._next + finite.size
+            if end <= EXAMPLE_WINDOW:
+                self._recent[self._next : end] = finite
+            else:
+                split = EXAMPLE_WINDOW - self._next
+                self._recent[self._next :] = finite[:split]
+                self._recent[: end - EXAMPLE_WINDOW] = finite[split:]
+            self._next = end % EXAMPLE_WINDOW
+            self._filled = min(EXAMPLE_WINDOW, self._filled + finite.size)
+        if self._steps <= self.warmup or self._filled == 0:
+            return math.inf
+        return float(np.percentile(self._recent[: self._filled], self.percentile))
 
     def level(self, watched: float) -> float:
         if math.isfinite(watched):
@@ -83,6 +128,21 @@ class EmaRule:
         self.k, self.alpha, self.warmup = k, alpha, warmup
         self.seen: list[float] = []
         self.mean = math.nan
+        self._example_steps: list[np.ndarray] = []
+
+    def level_of_examples(self, values: np.ndarray) -> float:
+        """k times an exponential average of the steps' mean values (clipped at the level)."""
+        finite = _finite(values)
+        if len(self._example_steps) < max(self.warmup, 1):
+            if finite.size:
+                self._example_steps.append(finite)
+                self.mean = float(np.concatenate(self._example_steps).mean())
+            return math.inf
+        limit = self.k * self.mean
+        if finite.size:
+            step_mean = float(np.minimum(finite, limit).mean())
+            self.mean = self.alpha * self.mean + (1.0 - self.alpha) * step_mean
+        return limit
 
     def level(self, watched: float) -> float:
         if len(self.seen) < max(self.warmup, 1):
@@ -130,6 +190,24 @@ class ZScoreRule:
         self.seen: list[float] = []
         self.mean = math.nan
         self.var = math.nan
+        self._example_steps: list[np.ndarray] = []
+
+    def level_of_examples(self, values: np.ndarray) -> float:
+        """mean + z * std of the examples' values, both exponential averages per step."""
+        finite = _finite(values)
+        if len(self._example_steps) < max(self.warmup, 2):
+            if finite.size:
+                self._example_steps.append(finite)
+                seen = np.concatenate(self._example_steps)
+                self.mean, self.var = float(seen.mean()), float(seen.var())
+            return math.inf
+        limit = self.mean + self.z_level * math.sqrt(self.var)
+        if finite.size:
+            kept = np.minimum(finite, limit)
+            spread = float(((kept - self.mean) ** 2).mean())
+            self.mean = self.alpha * self.mean + (1.0 - self.alpha) * float(kept.mean())
+            self.var = self.alpha * self.var + (1.0 - self.alpha) * spread
+        return limit
 
     def level(self, watched: float) -> float:
         if len(self.seen) < max(self.warmup, 2):

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from core.scenario import DataConfig
+from core.scenario import REGRESSION_TASKS, DataConfig, Scenario
 
 TEACHER_WIDTH = 32
 Params = dict[str, np.ndarray]
@@ -95,3 +95,23 @@ TASKS: dict[str, Task] = {
     "linear": Task(_linear_params, _linear),
     "teacher": Task(_teacher_params, _teacher),
 }
+
+
+def loss_floor(scenario: Scenario) -> float:
+    """The validation loss no model can beat in expectation: the target-noise variance noise^2
+    of the regression tasks (linear, teacher: squared error against targets with Gaussian noise
+    of std data.noise); 0 for classification, whose cross-entropy floor is not known here."""
+    if scenario.data.task in REGRESSION_TASKS:
+        return float(scenario.data.noise) ** 2
+    return 0.0
+
+
+def floor_source(scenario: Scenario) -> str:
+    """Where `loss_floor` comes from, in words (for windows.json)."""
+    task = scenario.data.task
+    if task in REGRESSION_TASKS:
+        return (
+            f"the target-noise variance data.noise^2 = {loss_floor(scenario):g} of the {task} "
+            "task: the squared-error loss of its own target function, in expectation"
+        )
+    return f"0: the {task} task is classification, whose cross-entropy floor is not known here"

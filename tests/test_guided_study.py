@@ -14,8 +14,10 @@ import numpy as np
 import pytest
 
 from core.engine import Engine, Member
+from core.profile import norm_profile
 from core.scenario import Scenario
 from core.study_file import load_study
+from core.tasks import loss_floor
 from tests.conftest import SCENARIOS
 
 GUIDED = SCENARIOS / "batch-size-coupling.study.toml"
@@ -67,3 +69,46 @@ def test_example_norm_bounds_the_outlier_at_both_batch_sizes(
 ) -> None:
     for batch, passes in runs.items():
         assert passes["example-norm"] < 0.2, batch
+
+
+def test_the_notes_numbers_are_what_the_entries_measure() -> None:
+    # Each number the guided study's notes quote, against the entries' own runs; "about" is
+    # within the tolerance written beside it. "ordinary examples typically 2 to 4" is the
+    # coupling preset's note too, checked in tests/test_preset_notes.py; the map's common window
+    # "3.2 to 10" in tests/core/test_maps.py.
+    study = load_study(GUIDED)
+    small, large = (e.scenario for e in study.entries if e.kind == "fan")
+    (mapped,) = [e.scenario for e in study.entries if e.kind == "map"]
+    assert small is not None and large is not None and mapped is not None
+    assert (small.outliers.scale, small.outliers.rate) == (45.0, 0.5)  # "by 45", "half"
+    thresholds = {c.method: c.threshold for c in small.clip}
+    assert thresholds["global-norm"] == 2.0 and thresholds["example-norm"] == 5.0
+    assert (small.train.batch_size, large.train.batch_size) == (8, 512)
+    profile = norm_profile(mapped)
+    assert profile.outlier_norm is not None
+    assert profile.outlier_norm == pytest.approx(250, rel=0.05)  # "about 250"
+    assert profile.outlier_norm / 8 == pytest.approx(31, abs=1.5)  # "250 / 8 = 31"
+    assert profile.outlier_norm / 512 == pytest.approx(0.5, abs=0.05)  # "to about 0.5"
+    measured = {}
+    for batch in (8, 32, 128, 512):
+        run = large.with_overrides({"train.batch_size": batch, "train.eval_every": 1})
+        members = [Member(c, run.train.seed) for c in run.clip]
+        engine = Engine(run, members, batch, outlier_steps=True)
+        records = list(engine.records())
+        measured[batch] = engine.outlier_step_means()["outlier_pass"]
+        if batch == 512:  # "global-norm never clips: pass-through is 1"
+            clipped = np.array([r.values["clipped_share"][1] for r in records])
+            assert clipped.max() == 0.0 and measured[batch][1] == 1.0
+    assert measured[8][1] == pytest.approx(0.06, abs=0.01)  # "about 6%"
+    for batch in (8, 512):
+        assert measured[batch][2] == pytest.approx(0.02, abs=0.005)  # "about 2%"
+    # "Reading the map": five seeds, the floor 0.25, a factor 2; the predicted pass-through at
+    # the threshold 2, to the two decimals quoted, and the runs within 0.03 of it.
+    assert len(mapped.map.seeds) == 5 and mapped.map.tolerance == 1.0
+    assert loss_floor(mapped) == 0.25
+    curve = profile.methods["global-norm"]
+    assert curve.threshold == 2.0
+    for batch, quoted in {8: 0.06, 32: 0.26, 128: 0.89, 512: 1.00}.items():
+        predicted = curve.pass_through[profile.grid.index(batch)]
+        assert predicted == pytest.approx(quoted, abs=0.005), batch
+        assert measured[batch][1] == pytest.approx(quoted, abs=0.03), batch

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from app.cli import main
@@ -36,3 +37,8 @@ def test_shipped_preset_runs_to_the_end(path: Path) -> None:
     survivors = [i for i, d in enumerate(result.diverged_at) if d is None]
     assert survivors, "every member of a shipped preset diverged"
     assert all(math.isfinite(result.final("val_loss")[i]) for i in survivors)
+    # outlier_share is |o| / (|o| + |c|) (DEVELOPERS.md): in [0, 1] by the triangle inequality
+    # on every row metrics.csv would hold; NaN only after a member diverged.
+    share = result.metric("outlier_share")
+    finite = share[np.isfinite(share)]
+    assert finite.size and finite.min() >= 0.0 and finite.max() <= 1.0

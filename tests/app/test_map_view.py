@@ -14,6 +14,7 @@ from core.analysis import analyse, stability_map
 from core.entry_model import STOPPED, TRAINED
 from core.profile import norm_profile
 from core.study import Study
+from core.tasks import loss_floor
 from tests.core.test_maps import SMALL
 
 
@@ -40,7 +41,8 @@ def test_a_map_entry_trains_to_the_end_and_its_maps_are_the_analysis_table(
     qtbot.waitUntil(lambda: view.model.status == TRAINED, timeout=120_000)
     rows = view.model.rows
     assert len(rows) == 54
-    results = analyse(rows, view.model.scenario.map.tolerance)
+    scenario = view.model.scenario
+    results = analyse(rows, scenario.map.tolerance, loss_floor(scenario))
     assert set(view.heatmaps) == set(results) == {"global-norm", "example-norm"}
     for label, shown in view.heatmaps.items():
         smap = stability_map(rows, label)

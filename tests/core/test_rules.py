@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import pytest
 
-from core.rules import EmaRule, FixedRule, PercentileRule, ZScoreRule
+from core.rules import EXAMPLE_WINDOW, EmaRule, FixedRule, PercentileRule, ZScoreRule
 
 
 def test_fixed_rule_always_gives_its_threshold() -> None:
@@ -59,3 +60,52 @@ def test_ema_rule_is_k_times_the_moving_average() -> None:
     assert rule.level(100.0) == pytest.approx(4.0)
     # 100 entered at its clipped value 4: the average is now 3, the level 6.
     assert rule.level(1.0) == pytest.approx(6.0)
+
+
+def test_example_percentile_is_numpys_percentile_of_the_latest_examples() -> None:
+    # The reference is np.percentile over the last EXAMPLE_WINDOW values fed so far (current
+    # step included); the warm-up counts steps, as for the batch-mean rule.
+    rng = np.random.default_rng(3)
+    rule = PercentileRule(90.0, warmup=2)
+    fed: list[float] = []
+    for step, size in enumerate([300, 300, 700, 5, 2000, 64]):
+        values = rng.lognormal(size=size)
+        fed += values.tolist()
+        level = rule.level_of_examples(values)
+        if step < 2:
+            assert level == math.inf
+        else:
+            assert level == np.percentile(fed[-EXAMPLE_WINDOW:], 90.0)
+
+
+def test_example_percentile_clips_the_same_share_of_examples_at_any_batch_size() -> None:
+    # A p-th percentile of the values it is taken over is exceeded by (100 - p)% of them; taken
+    # over examples, not over each batch's largest, that share cannot depend on the batch size.
+    rng = np.random.default_rng(4)
+    shares = {}
+    for batch in (8, 512):
+        rule = PercentileRule(90.0, warmup=5)
+        clipped = []
+        for _ in range(400 if batch == 8 else 40):
+            values = rng.lognormal(size=batch)
+            level = rule.level_of_examples(values)
+            if math.isfinite(level):
+                clipped.append(float((values > level).mean()))
+        shares[batch] = float(np.mean(clipped))
+    assert shares[8] == pytest.approx(0.10, abs=0.015)
+    assert shares[512] == pytest.approx(0.10, abs=0.015)
+
+
+def test_example_ema_and_zscore_follow_the_examples_and_ignore_non_finite_ones() -> None:
+    # Hand-computed: warm-up of one step on [1, 3] gives mean 2; the EMA level is k * 2 = 4;
+    # the next step's values [2, 10] enter clipped at 4: mean 3, so 0.5 * 2 + 0.5 * 3 = 2.5.
+    ema = EmaRule(k=2.0, alpha=0.5, warmup=1)
+    assert ema.level_of_examples(np.array([1.0, 3.0, math.nan])) == math.inf
+    assert ema.level_of_examples(np.array([2.0, 10.0, math.inf])) == pytest.approx(4.0)
+    assert ema.level_of_examples(np.array([1.0])) == pytest.approx(5.0)
+    # zscore: warm-up [0, 2] and [1, 1]: mean 1, variance 0.5; level 1 + 2 * sqrt(0.5).
+    z = ZScoreRule(z=2.0, alpha=0.97, warmup=2)
+    assert z.level_of_examples(np.array([0.0, 2.0])) == math.inf
+    assert z.level_of_examples(np.array([1.0, 1.0])) == math.inf
+    assert z.level_of_examples(np.array([50.0])) == pytest.approx(1.0 + 2.0 * math.sqrt(0.5))
+    assert FixedRule(0.7).level_of_examples(np.array([5.0])) == 0.7

@@ -137,6 +137,25 @@ def test_inconsistent_keys_are_rejected_with_a_way_out(
     assert_one_sentence(err)
 
 
+@pytest.mark.parametrize("rule", ["percentile", "ema", "zscore"])
+def test_dp_noise_with_an_adaptive_rule_is_refused_naming_both_keys(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], rule: str
+) -> None:
+    # DP-SGD noise has std sigma * C (Abadi et al. 2016); an adaptive rule has no level C during
+    # its warm-up (it returns inf there), so the noise would be unbounded.
+    text = VALID.replace('method = "global-norm"', 'method = "example-norm"') + (
+        f'noise_multiplier = 0.5\nrule = "{rule}"\n'
+    )
+    code, err = check_file(tmp_path, text, capsys)
+    assert code == 2
+    assert "clip[0].noise_multiplier" in err and "clip[0].rule" in err and rule in err
+    assert_one_sentence(err)
+    fixed = VALID.replace('method = "global-norm"', 'method = "example-norm"') + (
+        "noise_multiplier = 0.5\n"
+    )
+    assert check_file(tmp_path, fixed, capsys)[0] == 0
+
+
 def test_bad_command_line_exits_2_without_traceback(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["run"]) == 2
     err = capsys.readouterr().err
