@@ -20,6 +20,19 @@ def tick_text(value: float) -> str:
     return text.rstrip("0").rstrip(".") if "." in text else text
 
 
+def round_values(low: float, high: float, at_least: int = 3) -> list[float]:
+    """Evenly spaced multiples of 1, 2 or 5 times a power of ten inside [low, high]: the widest
+    spacing that gives `at_least` of them."""
+    power = 10.0 ** math.ceil(math.log10(high - low))
+    while True:
+        for mantissa in (5.0, 2.0, 1.0):
+            step = mantissa * power
+            first, last = math.ceil(low / step - 1e-9), math.floor(high / step + 1e-9)
+            if last - first + 1 >= at_least:
+                return [round(k * step, 12) for k in range(first, last + 1)]
+        power /= 10.0
+
+
 class LogAxis(pg.AxisItem):  # type: ignore[misc]
     """A log axis that labels only 1, 2 and 5 times a power of ten, in positional notation: the
     minor ticks pyqtgraph adds inside one decade stay, unlabelled, instead of piling their
@@ -28,6 +41,18 @@ class LogAxis(pg.AxisItem):  # type: ignore[misc]
     def __init__(self, orientation: str) -> None:
         super().__init__(orientation)
         self.enableAutoSIPrefix(False)
+
+    def logTickValues(
+        self, minVal: float, maxVal: float, size: float, stdTicks: list[tuple[float, list[float]]]
+    ) -> list[tuple[float | None, list[float]]]:
+        """pyqtgraph's log ticks, unless a range inside one decade leaves fewer than three: then
+        evenly spaced round values (0.26, 0.28, 0.3, ...) placed on the log scale."""
+        ticks = super().logTickValues(minVal, maxVal, size, stdTicks)
+        shown = {round(v, 9) for _, values in ticks for v in values if minVal <= v <= maxVal}
+        if len(shown) >= 3 or not maxVal > minVal:
+            return ticks  # type: ignore[no-any-return]
+        values = round_values(10.0**minVal, 10.0**maxVal)
+        return [(None, [math.log10(v) for v in values if v > 0])]
 
     def logTickStrings(self, values: list[float], scale: float, spacing: float) -> list[str]:
         labels, kept = [], 0

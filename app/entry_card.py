@@ -4,13 +4,35 @@ to fold, move and delete it, over the entry's own view."""
 
 from __future__ import annotations
 
-from PySide6 import QtCore, QtWidgets
+from PySide6 import QtCore, QtGui, QtWidgets
 
 from app.colors import MUTED, kind_color
 from app.views import EntryView
 from core.entry_model import EntryModel
 
 KIND_WORDS = {"note": "Note", "fan": "Fan", "map": "Map", "log": "Log"}
+
+
+class ElidedLabel(QtWidgets.QLabel):
+    """One line of text that yields its width to its neighbours and ends in "..." when short of
+    room; the whole text is in the tooltip."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.setSizePolicy(
+            QtWidgets.QSizePolicy.Policy.Ignored, QtWidgets.QSizePolicy.Policy.Preferred
+        )
+
+    def setText(self, text: str) -> None:
+        super().setText(text)
+        self.setToolTip(text)
+
+    def paintEvent(self, event: QtGui.QPaintEvent) -> None:
+        painter = QtGui.QPainter(self)
+        shown = self.fontMetrics().elidedText(
+            self.text(), QtCore.Qt.TextElideMode.ElideRight, self.width()
+        )
+        painter.drawText(self.rect(), int(self.alignment()), shown)
 
 
 class EntryCard(QtWidgets.QFrame):
@@ -48,7 +70,7 @@ class EntryCard(QtWidgets.QFrame):
         self.title_label.setFont(font)
         self.kind_label = QtWidgets.QLabel(KIND_WORDS.get(self.kind, self.kind))
         self.kind_label.setStyleSheet(f"color: {color}; font-weight: bold;")
-        self.headline_label = QtWidgets.QLabel()
+        self.headline_label = ElidedLabel()
         self.headline_label.setStyleSheet(f"color: {MUTED};")
         header.addWidget(self.toggle)
         header.addWidget(self.kind_label)

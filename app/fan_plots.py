@@ -29,9 +29,9 @@ pg.setConfigOptions(background="w", foreground="k", antialias=False)
 PLOTS = (
     ("loss", "clean validation loss", "loss", True),
     ("norms", "batch-mean gradient norm", "L2 norm", True),
-    ("clipped", "clipped share", "share of what each method clips", False),
+    ("clipped", "clipped share", "share (0 to 1)", False),
     ("share", "outliers' share of the update", "share (0 to 1)", False),
-    ("pass", "outlier pass-through", "per step with outliers (0 to 1)", False),
+    ("pass", "outlier pass-through", "on outlier steps (0 to 1)", False),
 )
 MARKERS = ("o", "t", "s", "d", "+", "x")
 SERIES = ("loss", "pre", "post", "clipped", "share", "pass", "level")

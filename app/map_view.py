@@ -129,21 +129,29 @@ class MapView(QtWidgets.QFrame):
             bar = pg.ColorBarItem(
                 values=self.levels,
                 colorMap=colormap,
-                label="log10 final loss, one range for every map (x: diverged)",
+                label="log10 final loss (x: diverged)",
                 interactive=False,
                 width=14,
             )
             self.canvas.ci.addItem(bar, row=0, col=2, rowspan=max(1, (len(results) + 1) // 2))
-        rows_used = (len(results) + 1) // 2
-        self._draw_windows(rows_used)
-        rows_used += 1
+        row = (len(results) + 1) // 2
+        self._draw_windows(row)  # a plot row and a legend strip under it
+        plots, strips = row + 1, 1
         if self.model.profile is not None:
-            self._draw_profile(self.model.profile, rows_used)
-            rows_used += 1
-        self.canvas.setMinimumHeight(330 * rows_used)
+            self._draw_profile(self.model.profile, row + 2)
+            plots, strips = plots + 1, strips + 1
+        self.canvas.setMinimumHeight(330 * plots + 50 * strips)
+        for item in self.canvas.ci.items:
+            title = getattr(item, "titleLabel", None)
+            if title is not None:  # a long title may overhang; it must not widen the canvas
+                title.setMinimumWidth(0)
         lines = [sentence(w) for w in results.values()]
         if self.model.profile is not None:
             lines.append(profile_sentence(self.model.profile))
+        lines.append(
+            "<small>On the maps: white dots, the thresholds inside each window; dashed, the "
+            "entry's own threshold; x, diverged. Dark is a low loss.</small>"
+        )
         prefix = ""
         if self.model.edited or self.model.status == "training":
             prefix = (
@@ -159,6 +167,7 @@ class MapView(QtWidgets.QFrame):
         self, i: int, label: str, smap: StabilityMap, result: MethodWindows, colormap: object
     ) -> pg.ImageItem:
         values = self.heatmaps[label]
+        own = next((c.threshold for c in self.model.scenario.clip if c.display_name == label), None)
         plot = self.canvas.addPlot(
             row=i // 2,
             col=i % 2,
@@ -206,7 +215,6 @@ class MapView(QtWidgets.QFrame):
                     brush=pg.mkBrush(255, 255, 255, 230),
                 )
             )
-        own = next((c.threshold for c in self.model.scenario.clip if c.display_name == label), None)
         if own is not None and smap.thresholds:
             nearest = int(np.argmin(np.abs(np.log(np.array(smap.thresholds)) - math.log(own))))
             plot.addItem(
@@ -214,8 +222,6 @@ class MapView(QtWidgets.QFrame):
                     pos=nearest + 0.5,
                     angle=90,
                     pen=pg.mkPen("#FFFFFF", width=1.5, style=QtCore.Qt.PenStyle.DashLine),
-                    label=f"entry's {tick_text(own)}",
-                    labelOpts={"position": 0.95, "color": "#FFFFFF"},
                 )
             )
         return image
@@ -225,8 +231,7 @@ class MapView(QtWidgets.QFrame):
             row=row,
             col=0,
             colspan=3,
-            title="threshold windows against batch size (white dots on the maps; shaded: one "
-            "threshold for every size; arrows: the window reaches the grid's end)",
+            title="threshold windows against batch size",
             axisItems={"left": LogAxis("left"), "bottom": PlainAxis("bottom")},
         )
         chart.setLogMode(x=True, y=True)
@@ -235,8 +240,11 @@ class MapView(QtWidgets.QFrame):
         chart.getAxis("bottom").setTicks([[(math.log10(b), str(b)) for b in sizes]])
         chart.setLabel("bottom", "batch size")
         chart.setLabel("left", "threshold")
-        legend = chart.addLegend(offset=(10, -10), brush=(255, 255, 255, 210))
+        legend = pg.LegendItem(colCount=2, labelTextSize="8pt")
+        self.canvas.ci.addItem(legend, row=row + 1, col=0, colspan=3)
+        self.canvas.ci.layout.setRowMaximumHeight(row + 1, 50)
         count = len(results)
+        shaded = opened = False
         for i, (label, result) in enumerate(results.items()):
             color = method_color(result.method)
             xs, ys, open_up, open_down = [], [], [], []
@@ -250,7 +258,13 @@ class MapView(QtWidgets.QFrame):
                     open_up.append((x, w.upper))
                 if w.at_lower_edge:
                     open_down.append((x, w.lower))
-            chart.plot(xs, ys, connect="pairs", pen=pg.mkPen(color, width=4), name=label)
+            bars = chart.plot(xs, ys, connect="pairs", pen=pg.mkPen(color, width=4))
+            legend.addItem(bars, label)
+            # End ticks: a window of one threshold is a tick, not an invisible bar of no length.
+            chart.plot(
+                xs, ys, pen=None, symbol="_", symbolSize=14, symbolPen=pg.mkPen(color, width=3)
+            )
+            opened = opened or bool(open_up or open_down)
             for points, symbol in ((open_up, "t1"), (open_down, "t")):
                 if points:
                     px, py = zip(*points, strict=True)
@@ -273,39 +287,79 @@ class MapView(QtWidgets.QFrame):
                     pen=pg.mkPen(color + "88"),
                 )
                 chart.addItem(region)
-        legend.setParentItem(chart.vb)
+                shaded = True
+        if shaded:
+            shade = pg.PlotDataItem(pen=pg.mkPen("#bbbbbb", width=8))
+            legend.addItem(shade, "shaded: one threshold for every size")
+        if opened:
+            arrow = pg.PlotDataItem(pen=None, symbol="t1", symbolBrush="#777777", symbolPen=None)
+            legend.addItem(arrow, "arrow: the window runs on past the grid's end")
 
     def _draw_profile(self, profile: NormProfile, row: int) -> None:
-        """Predicted batch-mean gradient norm against B, with the thresholds drawn across it."""
-        plot = self.canvas.addPlot(
+        """Each norm method's predicted clean norm against B, in the units it clips, with its
+        threshold; and the predicted pass-through of a step with the outliers, per method."""
+        grid = np.asarray(profile.grid, dtype=np.float64)
+        ticks = [[(math.log10(b), str(b)) for b in profile.batch_sizes]]
+        norms = self.canvas.addPlot(
             row=row,
             col=0,
-            colspan=3,
-            title=f"norm profile at step {profile.checkpoint_step}: "
-            "expected batch-mean gradient norm, clean data",
+            title=f"norm profile at step {profile.checkpoint_step}: clean norm per unit",
             axisItems={"left": LogAxis("left"), "bottom": PlainAxis("bottom")},
         )
-        plot.setLogMode(x=True, y=True)
-        low, high = min(profile.batch_sizes), max(profile.batch_sizes)
-        xs = np.geomspace(max(1, low / 2), min(high * 2, profile.population), 60)
-        ys = [math.sqrt(profile.predicted_sq(float(b))) for b in xs]
-        plot.addLegend(offset=(-10, 10), brush=(255, 255, 255, 210))
-        plot.plot(xs, ys, pen=pg.mkPen("#000000", width=2), name="sqrt(|G|^2 + tr(Sigma)/B)")
-        plot.plot(
-            xs,
-            np.full(len(xs), math.sqrt(max(profile.grad_sq, 1e-300))),
-            pen=pg.mkPen("#777777", width=1, style=QtCore.Qt.PenStyle.DashLine),
-            name="|G|, the mean gradient",
+        passing = self.canvas.addPlot(
+            row=row,
+            col=1,
+            colspan=2,
+            title="norm profile: outlier pass-through",
+            axisItems={"left": PlainAxis("left"), "bottom": PlainAxis("bottom")},
         )
-        for label, threshold in profile.thresholds.items():
-            clip = next((c for c in self.model.scenario.clip if c.display_name == label), None)
-            color = method_color(clip.method if clip else "global-norm")
-            plot.plot(
-                xs,
-                np.full(len(xs), threshold),
-                pen=pg.mkPen(color, width=2, style=QtCore.Qt.PenStyle.DotLine),
-                name=f"{label} threshold {tick_text(threshold)}",
+        norms.setLogMode(x=True, y=True)
+        passing.setLogMode(x=True, y=False)
+        passing.setYRange(0.0, 1.05, padding=0)
+        passing.getAxis("left").setTickSpacing(0.25, 0.25)
+        for plot in (norms, passing):
+            plot.getAxis("bottom").setTicks(ticks)
+            plot.setLabel("bottom", "batch size")
+        norms.setLabel("left", "L2 norm")
+        passing.setLabel("left", "pass-through (0 to 1)")
+        legend = pg.LegendItem(colCount=1, labelTextSize="8pt")
+        self.canvas.ci.addItem(legend, row=row + 1, col=0, colspan=3)
+        self.canvas.ci.layout.setRowMaximumHeight(row + 1, 20 * (len(profile.methods) + 1) + 10)
+        half = pg.InfiniteLine(
+            pos=0.5, angle=0, pen=pg.mkPen("#999999", width=1, style=QtCore.Qt.PenStyle.DashLine)
+        )
+        passing.addItem(half)
+        styles = (QtCore.Qt.PenStyle.SolidLine, QtCore.Qt.PenStyle.DashDotLine)
+        for i, method in enumerate(profile.methods.values()):
+            color = method_color(method.method)
+            style = styles[i % len(styles)]
+            unit = {0: "the batch", 1: "one example"}.get(method.unit, f"a group of {method.unit}")
+            curve = norms.plot(
+                grid, np.asarray(method.norm), pen=pg.mkPen(color, width=2, style=style)
             )
-        plot.getAxis("bottom").setTicks([[(math.log10(b), str(b)) for b in profile.batch_sizes]])
-        plot.setLabel("bottom", "batch size")
-        plot.setLabel("left", "L2 norm")
+            norms.plot(
+                grid,
+                np.full(len(grid), method.threshold),
+                pen=pg.mkPen(color, width=1.5, style=QtCore.Qt.PenStyle.DotLine),
+            )
+            legend.addItem(
+                curve,
+                f"{method.label}: norm of {unit}, dotted at {tick_text(method.threshold)}",
+            )
+            through = np.asarray(method.pass_through, dtype=np.float64)
+            if np.isfinite(through).any():
+                passing.plot(
+                    grid, through, pen=pg.mkPen(color, width=2, style=style), connect="finite"
+                )
+                if method.half_batch is not None:
+                    passing.plot(
+                        [method.half_batch],
+                        [0.5],
+                        pen=None,
+                        symbol="o",
+                        symbolSize=8,
+                        symbolBrush=color,
+                        symbolPen=None,
+                    )
+        grey = pg.PlotDataItem(pen=pg.mkPen("#999999", style=QtCore.Qt.PenStyle.DashLine))
+        legend.addItem(grey, "dot: where half passes")

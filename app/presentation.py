@@ -39,6 +39,7 @@ def enlarge_plots(canvas: object, points: int = PLOT_PT) -> None:
         if not isinstance(item, pg.PlotItem):
             continue
         item.titleLabel.setText(item.titleLabel.text, size=f"{points}pt")
+        item.titleLabel.setMinimumWidth(0)  # a long title may overhang, not widen the canvas
         for name in ("left", "bottom"):
             axis = item.getAxis(name)
             axis.setStyle(tickFont=tick_font)

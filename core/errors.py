@@ -1,4 +1,4 @@
-"""The one error type for bad user input: a preset, a notebook, an override or a CLI argument."""
+"""The one error type for bad user input: a preset, a study, an override or a CLI argument."""
 
 from __future__ import annotations
 

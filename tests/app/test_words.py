@@ -134,3 +134,17 @@ def test_a_handout_is_free_of_the_old_words(window: MainWindow, tmp_path: Path) 
     assert window.files.export_handout(out)
     text = out.read_text(encoding="utf-8")
     assert offending(re.sub(r"<[^>]+>", " ", text)) == []
+
+
+@pytest.mark.parametrize(
+    "path", sorted((Path(__file__).parents[2] / "scenarios").glob("*.study.toml")), ids=str
+)
+def test_the_shipped_studies_speak_in_our_words(path: Path) -> None:
+    """The notes of a shipped study are on screen too: they name our menus and entry kinds."""
+    from core.study_file import load_study
+
+    study = load_study(path)
+    for entry in study.entries:
+        text = f"{entry.title}\n{entry.text}"
+        assert offending(text) == [], text
+        assert not re.search(r"\b(notebook|run entry|sweep|report)\b", text, re.IGNORECASE), text
