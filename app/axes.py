@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import pyqtgraph as pg
+from PySide6 import QtCore
 
 
 def tick_text(value: float) -> str:
@@ -55,16 +56,19 @@ class LogAxis(pg.AxisItem):  # type: ignore[misc]
         return [(None, [math.log10(v) for v in values if v > 0])]
 
     def logTickStrings(self, values: list[float], scale: float, spacing: float) -> list[str]:
-        labels, kept = [], 0
-        for v in values:
-            value = 10.0 ** (v * scale)
-            mantissa = value / 10.0 ** math.floor(math.log10(value)) if value > 0 else 0.0
-            keep = any(abs(mantissa - m) < 1e-6 * m for m in (1.0, 2.0, 5.0, 10.0))
-            kept += keep
-            labels.append(tick_text(value) if keep else "")
-        if kept < 3:  # a narrow range: its few ticks are all needed
-            return [tick_text(10.0 ** (v * scale)) for v in values]
-        return labels
+        """Labels on 1, 2 and 5 times a power of ten; on 1, 2, 3 and 5 when that leaves fewer
+        than three; on every tick when even that does."""
+        numbers = [10.0 ** (v * scale) for v in values]
+        for mantissas in ((1.0, 2.0, 5.0), (1.0, 2.0, 3.0, 5.0)):
+            keep = [value > 0 and has_mantissa(value, mantissas) for value in numbers]
+            if sum(keep) >= 3:
+                return [tick_text(n) if k else "" for n, k in zip(numbers, keep, strict=True)]
+        return [tick_text(n) for n in numbers]  # a narrow range: its few ticks are all needed
+
+
+def has_mantissa(value: float, mantissas: tuple[float, ...]) -> bool:
+    mantissa = value / 10.0 ** math.floor(math.log10(value))
+    return any(abs(mantissa - m) < 1e-6 * m for m in (*mantissas, 10.0))
 
 
 class PlainAxis(pg.AxisItem):  # type: ignore[misc]
@@ -76,3 +80,25 @@ class PlainAxis(pg.AxisItem):  # type: ignore[misc]
 
     def tickStrings(self, values: list[float], scale: float, spacing: float) -> list[str]:
         return [tick_text(v * scale) for v in values]
+
+
+def overhanging_title(plot: pg.PlotItem) -> None:
+    """Let a plot's title overhang its plot instead of widening the whole canvas: pyqtgraph
+    makes the title's width the plot's minimum on every resize, which pushes the right-hand
+    plots of a narrow canvas out of sight."""
+    label = plot.titleLabel
+
+    def update_min() -> None:
+        bounds = label.itemRect()
+        label.setMinimumWidth(0)
+        label.setMinimumHeight(bounds.height())
+        label._sizeHint = {
+            QtCore.Qt.SizeHint.MinimumSize: (0, bounds.height()),
+            QtCore.Qt.SizeHint.PreferredSize: (0, bounds.height()),
+            QtCore.Qt.SizeHint.MaximumSize: (-1, -1),
+            QtCore.Qt.SizeHint.MinimumDescent: (0, 0),
+        }
+        label.updateGeometry()
+
+    label.updateMin = update_min
+    update_min()

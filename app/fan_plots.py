@@ -16,7 +16,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore
 
-from app.axes import LogAxis, PlainAxis
+from app.axes import LogAxis, PlainAxis, overhanging_title
 from app.colors import CLEAN_COLOR, FADED_ALPHA, LINE_STYLES, OUTLIER_COLOR, method_color
 from core.fan import member_for
 from core.fan_model import StackData
@@ -55,6 +55,7 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
             axes = {"left": LogAxis("left") if log else PlainAxis("left")}
             axes["bottom"] = PlainAxis("bottom")
             plot = pg.PlotItem(title=title, axisItems=axes)
+            overhanging_title(plot)
             plot.setLabel("bottom", "step")
             plot.setLabel("left", unit)
             plot.setClipToView(True)

@@ -102,11 +102,11 @@ class LogView(QtWidgets.QFrame):
         self.series.setLabel("left", "L2 norm")
         self.series.setClipToView(True)
         self.series.setDownsampling(mode="peak", auto=True)
-        self.series_legend = self.series.addLegend(
-            offset=(10, 10), brush=(255, 255, 255, 210), labelTextSize="8pt"
-        )
+        # Legends in strips under the plots, never over the data.
+        self.series_legend = pg.LegendItem(colCount=3, labelTextSize="8pt")
+        self.canvas.ci.addItem(self.series_legend, row=1, col=0, colspan=2)
         self.histogram = self.canvas.addPlot(
-            row=1,
+            row=2,
             col=0,
             title="norms: how often each size was logged",
             axisItems={"left": PlainAxis("left"), "bottom": PlainAxis("bottom")},
@@ -114,7 +114,7 @@ class LogView(QtWidgets.QFrame):
         self.histogram.setLabel("bottom", "log10 of the norm")
         self.histogram.setLabel("left", "steps")
         self.noise = self.canvas.addPlot(
-            row=1,
+            row=2,
             col=1,
             title="predicted batch-mean norm against the batch size",
             axisItems={"left": LogAxis("left"), "bottom": PlainAxis("bottom")},
@@ -122,8 +122,12 @@ class LogView(QtWidgets.QFrame):
         self.noise.setLogMode(x=True, y=True)
         self.noise.setLabel("bottom", "batch size")
         self.noise.setLabel("left", "L2 norm")
+        self.lower_legend = pg.LegendItem(colCount=2, labelTextSize="8pt")
+        self.canvas.ci.addItem(self.lower_legend, row=3, col=0, colspan=2)
         self.canvas.ci.layout.setRowStretchFactor(0, 3)
-        self.canvas.ci.layout.setRowStretchFactor(1, 2)
+        self.canvas.ci.layout.setRowStretchFactor(2, 2)
+        for strip in (1, 3):
+            self.canvas.ci.layout.setRowMaximumHeight(strip, 80)
         self.table = QtWidgets.QTableWidget(0, len(TABLE_COLUMNS))
         self.table.setHorizontalHeaderLabels(list(TABLE_COLUMNS))
         self.table.verticalHeader().setVisible(False)
@@ -245,15 +249,17 @@ class LogView(QtWidgets.QFrame):
         finite = np.isfinite(norm) & (norm > 0)
         self.series.clear()
         self.series_legend.clear()
-        self.series.plot(
+        self.lower_legend.clear()
+        legend = self.series_legend
+        curve = self.series.plot(
             steps,
             np.where(finite, norm, np.nan),
             pen=pg.mkPen(NORM_COLOR, width=1),
             connect="finite",
-            name="logged norm",
         )
+        legend.addItem(curve, "logged norm")
         if advice.spike_count:
-            self.series.plot(
+            marks = self.series.plot(
                 steps[advice.spikes],
                 norm[advice.spikes],
                 pen=None,
@@ -261,12 +267,12 @@ class LogView(QtWidgets.QFrame):
                 symbolSize=7,
                 symbolBrush=None,
                 symbolPen=pg.mkPen("#000000"),
-                name="spikes",
             )
+            legend.addItem(marks, "spikes")
         bad = ~np.isfinite(norm)
         top = float(np.nanmax(norm[finite])) if finite.any() else 1.0
         if bad.any():
-            self.series.plot(
+            marks = self.series.plot(
                 steps[bad],
                 np.full(int(bad.sum()), top * 1.5),
                 pen=None,
@@ -274,20 +280,17 @@ class LogView(QtWidgets.QFrame):
                 symbolSize=9,
                 symbolBrush=OUTLIER_COLOR,
                 symbolPen=pg.mkPen(OUTLIER_COLOR),
-                name=f"non-finite norm ({int(bad.sum())}), drawn at the top",
             )
+            legend.addItem(marks, f"non-finite norm ({int(bad.sum())}), drawn at the top")
+        clips = skips = False
         for order, row in enumerate(sorted(self.shown)):
             r = advice.replays[row]
             color = RULE_COLORS[order % len(RULE_COLORS)]
             levels = np.where(np.isfinite(r.levels), r.levels, np.nan)
-            self.series.plot(
-                steps,
-                levels,
-                pen=pg.mkPen(color, width=2),
-                connect="finite",
-                name=f"{rule_title(r)}, {r.clip.on_spike}: level",
-            )
+            level = self.series.plot(steps, levels, pen=pg.mkPen(color, width=2), connect="finite")
+            legend.addItem(level, f"{rule_title(r)}, {r.clip.on_spike}: its level")
             clipped = r.clipped & ~r.skipped & finite
+            clips, skips = clips or bool(clipped.any()), skips or bool((r.skipped & finite).any())
             if clipped.any():
                 self.series.plot(
                     steps[clipped],
@@ -309,6 +312,13 @@ class LogView(QtWidgets.QFrame):
                     symbolBrush=color,
                     symbolPen=pg.mkPen(color),
                 )
+        grey = "#555555"
+        if clips:
+            mark = pg.PlotDataItem(pen=None, symbol="t", symbolBrush=grey, symbolPen=None)
+            legend.addItem(mark, "triangle: a step the rule clips")
+        if skips:
+            mark = pg.PlotDataItem(pen=None, symbol="x", symbolPen=pg.mkPen(grey))
+            legend.addItem(mark, "x: a step the rule skips")
         self._draw_histogram(advice)
         self._draw_noise(advice)
 
@@ -324,9 +334,11 @@ class LogView(QtWidgets.QFrame):
         plot.plot(
             edges, counts, stepMode="center", fillLevel=0, brush=NORM_COLOR + "88", pen=NORM_COLOR
         )
+        fixed = False
         for order, row in enumerate(sorted(self.shown)):
             r = advice.replays[row]
             if r.clip.rule == "fixed" and r.clip.threshold:
+                fixed = True
                 color = RULE_COLORS[order % len(RULE_COLORS)]
                 plot.addItem(
                     pg.InfiniteLine(
@@ -346,6 +358,9 @@ class LogView(QtWidgets.QFrame):
                     labelOpts={"position": 0.9, "color": "#000000"},
                 )
             )
+        if fixed:
+            dotted = pg.PlotDataItem(pen=pg.mkPen("#555555", style=QtCore.Qt.PenStyle.DotLine))
+            self.lower_legend.addItem(dotted, "left, dotted: a fixed rule's threshold")
 
     def _draw_noise(self, advice: Advice) -> None:
         plot = self.noise
@@ -361,10 +376,15 @@ class LogView(QtWidgets.QFrame):
         if noise is not None:
             ys = np.array([noise.predicted_norm(float(b)) for b in xs])
             bands = [noise.predicted_norm_interval(float(b)) for b in xs]
-            lower = pg.PlotDataItem(xs, [i.low for i in bands], pen=None)
-            upper = pg.PlotDataItem(xs, [i.high for i in bands], pen=None)
-            plot.addItem(pg.FillBetweenItem(lower, upper, brush=pg.mkBrush("#0072B233")))
-            plot.plot(xs, ys, pen=pg.mkPen("#0072B2", width=2))
+            # The band's edges are not items of the (log-scaled) plot: give them log10 values.
+            lower = pg.PlotDataItem(np.log10(xs), np.log10([max(i.low, 1e-300) for i in bands]))
+            upper = pg.PlotDataItem(np.log10(xs), np.log10([i.high for i in bands]))
+            band = pg.FillBetweenItem(lower, upper, brush=pg.mkBrush("#0072B233"))
+            plot.addItem(band)
+            line = plot.plot(xs, ys, pen=pg.mkPen("#0072B2", width=2))
+            self.lower_legend.addItem(line, "right: predicted norm sqrt(|G|^2 + tr(Sigma)/B)")
+            sample = pg.PlotDataItem(pen=None, fillLevel=0, fillBrush=pg.mkBrush("#0072B255"))
+            self.lower_legend.addItem(sample, "its 95% band")
             plot.setTitle("predicted batch-mean norm, 95% band")
         else:
             text = pg.TextItem(
@@ -377,7 +397,7 @@ class LogView(QtWidgets.QFrame):
             plot.setTitle("no noise estimate (one norm per step)")
         if carry is not None:
             limit_pen = pg.mkPen(MUTED, width=1, style=QtCore.Qt.PenStyle.DashLine)
-            plot.plot(
+            limits = plot.plot(
                 [carry.from_batch, carry.to_batch],
                 [carry.threshold, carry.signal_limit],
                 pen=limit_pen,
@@ -387,7 +407,7 @@ class LogView(QtWidgets.QFrame):
                 [carry.threshold, carry.noise_limit],
                 pen=limit_pen,
             )
-            plot.plot(
+            given = plot.plot(
                 [carry.from_batch],
                 [carry.threshold],
                 pen=None,
@@ -395,8 +415,12 @@ class LogView(QtWidgets.QFrame):
                 symbolSize=9,
                 symbolBrush="#000000",
             )
+            self.lower_legend.addItem(
+                given, f"threshold {tick_text(carry.threshold)} at B = {carry.from_batch}"
+            )
+            self.lower_legend.addItem(limits, "dashed: its limits, all signal or all noise")
             if carry.carried_threshold is not None:
-                plot.plot(
+                star = plot.plot(
                     [carry.to_batch],
                     [carry.carried_threshold],
                     pen=None,
@@ -404,6 +428,10 @@ class LogView(QtWidgets.QFrame):
                     symbolSize=14,
                     symbolBrush="#D55E00",
                     symbolPen=None,
+                )
+                self.lower_legend.addItem(
+                    star,
+                    f"carried: {tick_text(carry.carried_threshold)} at B = {carry.to_batch}",
                 )
         ticks = sorted(
             {int(b) for b in (base, low, high) if b >= 1}

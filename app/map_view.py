@@ -8,7 +8,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
-from app.axes import LogAxis, PlainAxis, tick_text
+from app.axes import LogAxis, PlainAxis, overhanging_title, tick_text
 from app.colors import method_color
 from app.entry_header import EntryHeader
 from app.export import export_menu
@@ -142,9 +142,8 @@ class MapView(QtWidgets.QFrame):
             plots, strips = plots + 1, strips + 1
         self.canvas.setMinimumHeight(330 * plots + 50 * strips)
         for item in self.canvas.ci.items:
-            title = getattr(item, "titleLabel", None)
-            if title is not None:  # a long title may overhang; it must not widen the canvas
-                title.setMinimumWidth(0)
+            if isinstance(item, pg.PlotItem):
+                overhanging_title(item)
         lines = [sentence(w) for w in results.values()]
         if self.model.profile is not None:
             lines.append(profile_sentence(self.model.profile))

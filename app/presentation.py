@@ -10,6 +10,7 @@ from collections.abc import Callable
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from app.axes import overhanging_title
 from app.fan_view import FanView
 from app.map_view import MapView
 from app.note_view import NoteView
@@ -39,7 +40,7 @@ def enlarge_plots(canvas: object, points: int = PLOT_PT) -> None:
         if not isinstance(item, pg.PlotItem):
             continue
         item.titleLabel.setText(item.titleLabel.text, size=f"{points}pt")
-        item.titleLabel.setMinimumWidth(0)  # a long title may overhang, not widen the canvas
+        overhanging_title(item)
         for name in ("left", "bottom"):
             axis = item.getAxis(name)
             axis.setStyle(tickFont=tick_font)

@@ -81,7 +81,8 @@ def shot(
     if not saved:
         raise RuntimeError(f"could not write {out}")
     still = f"; {left} still training when the picture was taken" if left else ""
+    count = len(trained)
     return (
-        f"wrote {out} ({size[0]}x{size[1]}, {len(trained)} entries trained, "
-        f"{len(study.workable) - len(trained)} from the cache{still})"
+        f"wrote {out} ({size[0]}x{size[1]}, {count} {'entry' if count == 1 else 'entries'} "
+        f"trained, {len(study.workable) - count} from the cache{still})"
     )

@@ -61,6 +61,13 @@ def test_a_map_entry_trains_to_the_end_and_its_maps_are_the_analysis_table(
         assert getattr(profile, name) == pytest.approx(getattr(here, name), rel=1e-9)
     titles = [item.titleLabel.text for item in view.canvas.ci.items if hasattr(item, "titleLabel")]
     assert sum("norm profile" in t for t in titles) == 2  # the norms and the pass-through
+    # Issue 14: nothing cut off. A long title or legend must not widen the canvas past the
+    # entry: every plot ends inside the canvas, in a window of a laptop's screen.
+    window.resize(1440, 900)
+    qtbot.wait(50)
+    width = view.canvas.viewport().width()
+    for item in view.canvas.ci.items:
+        assert item.sceneBoundingRect().right() <= width + 1, (type(item).__name__, width)
 
 
 def test_stopping_a_map_entry_stops_it(qtbot: QtBot, window: MainWindow) -> None:
