@@ -4,6 +4,7 @@ scrubbing. Keeps no copy of the model, only which member is on display."""
 from __future__ import annotations
 
 import math
+import time
 
 import numpy as np
 import pyqtgraph as pg
@@ -19,6 +20,8 @@ from core.fan import FAN_SIZE, fan_factors, member_for
 from core.fan_model import FanModel, StackData, clip_regime
 from core.scenario import ClipConfig
 
+LIVE_S = 0.1  # while records stream in, the plots redraw at most 10 times a second
+
 
 class FanView(QtWidgets.QFrame):
     """Shows one FanModel."""
@@ -32,6 +35,7 @@ class FanView(QtWidgets.QFrame):
         self.model = model
         self.redraws = 0  # plot refreshes, for the UI benchmark
         self._dirty = False
+        self._drawn_at = 0.0  # time.monotonic() of the last refresh
         self.setMinimumHeight(1000)
         self.setSizePolicy(
             QtWidgets.QSizePolicy.Policy.Ignored, QtWidgets.QSizePolicy.Policy.Preferred
@@ -142,9 +146,12 @@ class FanView(QtWidgets.QFrame):
         """Stop listening to the model (before the view is dropped)."""
         self.model.unsubscribe(self._on_model_changed)
 
-    def refresh_if_dirty(self) -> None:
-        if self._dirty:
-            self.refresh()
+    def refresh_if_dirty(self) -> bool:
+        """Redraw for records that arrived, at most every LIVE_S; whether it redrew."""
+        if not self._dirty or time.monotonic() - self._drawn_at < LIVE_S:
+            return False
+        self.refresh()
+        return True
 
     def headline(self) -> str:
         """The entry's headline figure: the best member at the entry's own batch size."""
@@ -257,6 +264,7 @@ class FanView(QtWidgets.QFrame):
     def refresh(self) -> None:
         """Point every curve at the selected members; one setData per curve."""
         self._dirty = False
+        self._drawn_at = time.monotonic()
         self.redraws += 1
         current = self.model.current_stack(self.batch_size)
         earlier = self.model.earlier_stack(self.batch_size)

@@ -18,6 +18,7 @@ from PySide6 import QtCore, QtGui, QtWidgets
 from app import commands
 from app.autosave import Autosave
 from app.entry_card import EntryCard
+from app.fan_view import FanView
 from app.file_actions import StudyFiles
 from app.inspector import Inspector
 from app.menus import build_menus
@@ -81,6 +82,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.statusBar().addPermanentWidget(self.speed_label)
         self._last_steps, self._last_time = 0, time.monotonic()
         self._timer(1000, self._on_speed_tick)
+        self._fan_turn = 0  # the card whose fan redraws first on the next tick
         self._redraw_timer = self._timer(REDRAW_MS, self._on_redraw_tick)
         self._retrain_timer = QtCore.QTimer(self)
         self._retrain_timer.setSingleShot(True)
@@ -453,14 +455,25 @@ class MainWindow(QtWidgets.QMainWindow):
         self.presentation = None
 
     def _on_redraw_tick(self) -> None:
+        """Drain the pool, then redraw what changed; at most one fan's plots per tick (the
+        fans take turns), so that a tick stays short and input is answered between them."""
         self.pool.poll()
-        if self.presentation is not None:
-            self.presentation.refresh_if_dirty()
-        for card in self.cards:
-            if isinstance(card.model, FanModel | MapModel | LogModel):
-                card.body.refresh_if_dirty()  # type: ignore[union-attr]
-                if card.model.status == TRAINING:
-                    card.refresh_headline()
+        drawn = self.presentation is not None and self.presentation.refresh_if_dirty()
+        turn = self._fan_turn % max(len(self.cards), 1)
+        for card in self.cards[turn:] + self.cards[:turn]:
+            body = card.body
+            if isinstance(body, FanView):
+                if drawn or not body.refresh_if_dirty():
+                    continue
+                drawn = True
+                self._fan_turn = self.cards.index(card) + 1
+            elif isinstance(card.model, MapModel | LogModel):
+                body.refresh_if_dirty()  # type: ignore[union-attr]
+            else:
+                continue
+            model = card.model
+            if isinstance(model, FanModel | MapModel | LogModel) and model.status == TRAINING:
+                card.refresh_headline()
         self.status_label.setText(self.runner.status_text())
 
     def _on_speed_tick(self) -> None:

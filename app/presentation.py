@@ -169,10 +169,14 @@ class PresentationWindow(QtWidgets.QWidget):
     def leave(self) -> None:
         self.close()
 
-    def refresh_if_dirty(self) -> None:
+    def refresh_if_dirty(self) -> bool:
+        """Redraw the entry on screen for records that arrived; whether a fan's plots redrew."""
         view = self.views.get(self.index)
-        if isinstance(view, FanView | MapView):
+        if isinstance(view, FanView):
+            return view.refresh_if_dirty()
+        if isinstance(view, MapView):
             view.refresh_if_dirty()
+        return False
 
     def eventFilter(self, watched: QtCore.QObject, event: QtCore.QEvent) -> bool:
         if (

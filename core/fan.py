@@ -4,6 +4,7 @@ trained together so that moving a threshold or batch size only switches which me
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 
 import numpy as np
@@ -16,9 +17,12 @@ FAN_SPAN = 30.0  # thresholds from t / 30 to t * 30
 LADDER = (0.25, 1.0, 4.0, 16.0)  # batch sizes relative to train.batch_size
 
 
+@functools.cache
 def fan_factors() -> np.ndarray:
-    """Multipliers of the preset's threshold, log-spaced, 1.0 in the middle."""
-    return np.geomspace(1.0 / FAN_SPAN, FAN_SPAN, FAN_SIZE)
+    """Multipliers of the preset's threshold, log-spaced, 1.0 in the middle (read-only)."""
+    factors = np.geomspace(1.0 / FAN_SPAN, FAN_SPAN, FAN_SIZE)
+    factors.flags.writeable = False
+    return factors
 
 
 def batch_ladder(scenario: Scenario) -> tuple[int, ...]:

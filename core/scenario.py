@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import json
 import math
@@ -409,7 +410,11 @@ class Scenario:
         return content
 
     def hash(self) -> str:
-        """A stable hash of `content()`."""
+        """A stable hash of `content()` (computed once: a scenario never changes)."""
+        return self._content_hash
+
+    @functools.cached_property
+    def _content_hash(self) -> str:
         text = json.dumps(self.content(), sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(text.encode()).hexdigest()[:16]
 

@@ -210,18 +210,31 @@ def test_a_fan_trains_the_members_near_the_slider_first_smallest_batch_first(
     jobs = fan_jobs(fan, focus)
     sizes = sorted(fan.batch_sizes)
     members = fan_members(fan.scenario)
-    first = jobs[: len(sizes)]
-    assert [b for b, _ in first] == sizes
-    for _, columns in first:
-        fanned = [members[c] for c in columns if members[c].method != "none"]
-        factors = {round(m.threshold / 0.5, 6) for m in fanned}  # the preset's threshold is 0.5
-        near = {round(float(f), 6) for f in fan_factors()[2:7]}
-        assert factors == near
-        assert any(members[c].method == "none" for c in columns)
-    rest = jobs[len(sizes) :]
-    assert [b for b, _ in rest] == sorted(sizes, reverse=True)  # the costliest first
-    every = sorted(c for _, columns in jobs if _ == sizes[0] for c in columns)
-    assert every == list(range(len(members)))  # each member exactly once per batch size
+    first = [j for j in jobs if j.near]
+    assert jobs[: len(first)] == first  # the near stacks before any other
+    assert sorted({j.batch_size for j in first}) == sizes
+    assert [j.batch_size for j in first] == sorted(j.batch_size for j in first)
+    near = {round(float(f), 6) for f in fan_factors()[2:7]}
+    for job in first:
+        fanned = [members[c] for c in job.columns if members[c].method != "none"]
+        assert {round(m.threshold / 0.5, 6) for m in fanned} == near  # the preset's is 0.5
+    assert all(any(members[c].method == "none" for c in j.columns) for j in first[:1])
+    rest = jobs[len(first) :]
+    order = [j.batch_size for j in rest]
+    assert order == sorted(order, reverse=True)  # the costliest first
+    for size in sizes:
+        every = sorted(c for j in jobs if j.batch_size == size for c in j.columns)
+        assert every == list(range(len(members)))  # each member exactly once per batch size
+
+
+def test_each_fan_stack_holds_one_clipping_method(fan: FanModel) -> None:
+    members = fan_members(fan.scenario)
+    for focus in (None, 1.0):
+        for job in fan_jobs(fan, focus):
+            methods = {members[c].method for c in job.columns} - {"none"}
+            assert len(methods) == 1
+            if "none" in {members[c].method for c in job.columns}:
+                assert not members[job.columns[-1]].clip.spec.per_example
 
 
 def test_an_urgent_job_overtakes_the_jobs_waiting_in_the_queue(
@@ -271,3 +284,28 @@ def test_a_windows_workers_run_at_a_lower_priority_than_the_window() -> None:
         assert int(fields[16]) == int(own[16]) + 10
     finally:
         pool.shutdown()
+
+
+def test_a_member_trains_the_same_in_its_method_stack_as_in_one_of_every_member(
+    fan: FanModel,
+) -> None:
+    """The fan's plan splits the stacks by method; a member's numbers must not depend on its
+    stack (bit for bit: every member's arithmetic is its own rows of each batched product)."""
+    from core.engine import Engine
+
+    members = fan_members(fan.scenario)
+    batch = sorted(fan.batch_sizes)[-1]
+
+    def trained(columns: tuple[int, ...]) -> dict[int, list[float]]:
+        engine = Engine(fan.scenario, [members[c] for c in columns], batch, keep_norms=True)
+        out: dict[int, list[float]] = {c: [] for c in columns}
+        for record in engine.records():
+            for slot, c in enumerate(columns):
+                out[c] += [float(record.values[k][slot]) for k in ("val_loss", "grad_norm_pre")]
+        return out
+
+    whole = trained(tuple(range(len(members))))
+    for job in fan_jobs(fan, None):
+        if job.batch_size == batch:
+            for column, series in trained(job.columns).items():
+                assert series == whole[column]
