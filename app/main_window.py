@@ -18,12 +18,11 @@ from PySide6 import QtCore, QtGui, QtWidgets
 from app import commands
 from app.autosave import Autosave
 from app.entry_card import EntryCard
-from app.fan_view import FanView
 from app.file_actions import StudyFiles
 from app.inspector import Inspector
 from app.menus import build_menus
 from app.presets_dialog import PresetBrowser
-from app.views import EntryView, WorkedView, make_view
+from app.views import EntryView, WorkedView, make_view, redraw_cards
 from core.entry_model import TRAINING, EntryModel, NoteModel, TrainedEntry, WorkedEntry
 from core.fan_model import FanModel
 from core.log_entry import LogSource
@@ -455,25 +454,9 @@ class MainWindow(QtWidgets.QMainWindow):
         self.presentation = None
 
     def _on_redraw_tick(self) -> None:
-        """Drain the pool, then redraw what changed; at most one fan's plots per tick (the
-        fans take turns), so that a tick stays short and input is answered between them."""
         self.pool.poll()
         drawn = self.presentation is not None and self.presentation.refresh_if_dirty()
-        turn = self._fan_turn % max(len(self.cards), 1)
-        for card in self.cards[turn:] + self.cards[:turn]:
-            body = card.body
-            if isinstance(body, FanView):
-                if drawn or not body.refresh_if_dirty():
-                    continue
-                drawn = True
-                self._fan_turn = self.cards.index(card) + 1
-            elif isinstance(card.model, MapModel | LogModel):
-                body.refresh_if_dirty()  # type: ignore[union-attr]
-            else:
-                continue
-            model = card.model
-            if isinstance(model, FanModel | MapModel | LogModel) and model.status == TRAINING:
-                card.refresh_headline()
+        self._fan_turn = redraw_cards(self.cards, self._fan_turn, drawn)
         self.status_label.setText(self.runner.status_text())
 
     def _on_speed_tick(self) -> None:
