@@ -132,8 +132,9 @@ def _mean(values: np.ndarray) -> float:
 
 
 def threshold_text(threshold: float) -> str:
-    """A grid threshold as map.csv writes it (every digit; empty for method none)."""
-    return "" if math.isnan(threshold) else repr(float(threshold))
+    """A grid threshold as map.csv writes it (every digit, whole numbers without a point; empty
+    for method none): profile.json's pass_through is keyed by this text."""
+    return _cell(float(threshold), single=False)
 
 
 def row_key(row: dict[str, Any]) -> tuple[str, str, int, int]:

@@ -73,9 +73,9 @@ def test_example_norm_bounds_the_outlier_at_both_batch_sizes(
 
 def test_the_notes_numbers_are_what_the_entries_measure() -> None:
     # Each number the guided study's notes quote, against the entries' own runs; "about" is
-    # within the tolerance written beside it. "ordinary examples typically 2 to 4" is the
-    # coupling preset's note too, checked in tests/test_preset_notes.py; the map's common window
-    # "3.2 to 10" in tests/core/test_maps.py.
+    # within the tolerance written beside it. "an ordinary example's is about 2 (nine in ten
+    # below 6)" is the coupling preset's note too, checked in tests/test_preset_notes.py; the
+    # map's common window "3.2 to 10" in tests/core/test_maps.py.
     study = load_study(GUIDED)
     small, large = (e.scenario for e in study.entries if e.kind == "fan")
     (mapped,) = [e.scenario for e in study.entries if e.kind == "map"]

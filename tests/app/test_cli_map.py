@@ -41,6 +41,12 @@ def test_map_writes_its_files_and_says_what_it_found(
     profile = json.loads((out / "profile.json").read_text())
     assert profile["trace"] > 0 and len(profile["predicted_norm"]) == len(profile["batch_sizes"])
     assert {s["method"] for s in profile["suggestions"]} == {"global-norm", "example-norm"}
+    # pass_through is keyed by the threshold as map.csv writes it (1 and 10, not 1.0 and 10.0)
+    for method in ("global-norm", "example-norm"):
+        written = [r["threshold"] for r in rows if r["label"] == method]
+        assert list(profile["pass_through"][method]) == list(dict.fromkeys(written))
+        assert "1" in written and "10" in written
+        assert set(profile["pass_through"][method]["1"]) == {"8", "16", "32"}
 
 
 def test_map_rejects_a_bad_job_count(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -59,6 +59,18 @@ def test_a_map_entry_trains_to_the_end_and_its_maps_are_the_analysis_table(
     here = norm_profile(view.model.scenario)
     for name in ("grad_sq", "trace", "outlier_norm"):
         assert getattr(profile, name) == pytest.approx(getattr(here, name), rel=1e-9)
+    # A window that reaches the end of the grid is drawn open: an arrow at that end, pointing
+    # on (up past the largest threshold, down past the smallest), and a legend line saying so.
+    arrows: dict[str, set[float]] = {"t1": set(), "t": set()}
+    for item in view.canvas.ci.items:
+        for curve in getattr(item, "listDataItems", lambda: [])():
+            symbol = curve.opts.get("symbol")
+            if symbol in arrows and curve.opts.get("pen") is None and curve.yData is not None:
+                arrows[symbol] |= {round(float(y), 9) for y in curve.yData}
+    open_up = {round(w.upper, 9) for r in results.values() for w in r.windows if w.at_upper_edge}
+    open_down = {round(w.lower, 9) for r in results.values() for w in r.windows if w.at_lower_edge}
+    assert open_up | open_down, "the small map should have a window that reaches the grid's end"
+    assert arrows == {"t1": open_up, "t": open_down}
     titles = [item.titleLabel.text for item in view.canvas.ci.items if hasattr(item, "titleLabel")]
     assert sum("norm profile" in t for t in titles) == 2  # the norms and the pass-through
     # Issue 14: nothing cut off. A long title or legend must not widen the canvas past the

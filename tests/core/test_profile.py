@@ -14,6 +14,7 @@ import torch
 from core.analysis import MethodWindows, Window
 from core.data import build_dataset
 from core.engine import Engine, Member, init_seed
+from core.maps import threshold_text
 from core.model import architecture, init_params
 from core.profile import (
     NormProfile,
@@ -94,7 +95,7 @@ def monte_carlo_pass(
 
 
 def predicted(profile: NormProfile, label: str, threshold: float, batch: int) -> float:
-    return profile.pass_through[label][repr(threshold)][str(batch)]
+    return profile.pass_through[label][threshold_text(threshold)][str(batch)]
 
 
 CASES = [
