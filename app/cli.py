@@ -10,6 +10,7 @@ run, so that `gradfence --help` and the window start fast.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import traceback
 from collections.abc import Sequence
@@ -19,6 +20,7 @@ from core import __version__
 from core.errors import GradfenceInputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
+EXIT_PIPE = 128 + 13  # ended by a closed pipe, as a shell reports SIGPIPE
 
 
 class InputArgumentParser(argparse.ArgumentParser):
@@ -181,6 +183,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("stopped.", file=sys.stderr)
         return EXIT_INTERNAL
+    except BrokenPipeError:  # the reader went away (`gradfence presets | head -1`): no more to say
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # nor at exit, when Python flushes stdout
+        return EXIT_PIPE
     except Exception:  # a bug of ours: say so, and keep the traceback for the report
         print("internal error (please report it with the text below):", file=sys.stderr)
         traceback.print_exc()

@@ -25,7 +25,7 @@ import numpy as np
 from core import __version__
 from core.fan import fan_members
 from core.fan_model import FanModel, StackData
-from core.fileio import atomic_writer, write_text_atomic
+from core.fileio import aside_path, atomic_writer, json_kind, write_text_atomic
 from core.map_model import MapModel
 from core.maps import COLUMNS
 from core.profile import NormProfile
@@ -64,7 +64,7 @@ def path_for(folder: Path, model: CachedModel) -> Path:
 
 def set_aside(path: Path, why: str) -> str:
     """Rename a bad file out of the way (never delete what a person might want to look at)."""
-    target = path.with_name(path.name + ".bad")
+    target = aside_path(path)
     try:
         path.replace(target)
     except OSError as exc:
@@ -136,7 +136,7 @@ def _read_map(path: Path, model: MapModel) -> tuple[list[dict[str, Any]], NormPr
     except ValueError as exc:
         raise BadCacheFileError(f"is not JSON ({exc})") from None
     if not isinstance(document, dict):
-        raise BadCacheFileError(f"holds {type(document).__name__}, not a table")
+        raise BadCacheFileError(f"holds {json_kind(document)}, not a table")
     if document.get("identity") != _identity(model.scenario):
         return None
     rows = document.get("rows")

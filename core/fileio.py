@@ -83,3 +83,25 @@ def check_out_file(path: Path, suffixes: tuple[str, ...], what: str, option: str
         raise GradfenceInputError(f"{option} {path}: the folder {folder} is not writable.")
     if path.exists() and not os.access(path, os.W_OK):
         raise GradfenceInputError(f"{option} {path}: the file is not writable.")
+
+
+def aside_path(path: Path) -> Path:
+    """Where to set a bad file aside: `NAME.bad`, or `NAME.bad.2`, `.bad.3`, ... when an
+    earlier one is there (a file set aside before is never overwritten)."""
+    target = path.with_name(path.name + ".bad")
+    n = 2
+    while target.exists():
+        target = path.with_name(f"{path.name}.bad.{n}")
+        n += 1
+    return target
+
+
+def json_kind(value: object) -> str:
+    """What a JSON value is, in JSON's words (for messages about a file that holds the wrong
+    thing): "a table", "a list", "null", "text", "a number", "true or false"."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true or false"
+    kinds = {dict: "a table", list: "a list", str: "text", int: "a number", float: "a number"}
+    return kinds.get(type(value), type(value).__name__)

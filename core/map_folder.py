@@ -24,7 +24,7 @@ from typing import IO, Any
 
 from core import __version__
 from core.errors import GradfenceInputError
-from core.fileio import check_out_folder, write_text_atomic
+from core.fileio import aside_path, check_out_folder, json_kind, write_text_atomic
 from core.formats import single
 
 TABLE_FILE = "map.csv"
@@ -110,7 +110,7 @@ def read_state(path: Path) -> dict[str, Any] | str:
     except (OSError, UnicodeDecodeError, ValueError) as exc:
         return f"does not read ({type(exc).__name__})"
     if not isinstance(state, dict):
-        return "is not a table"
+        return f"holds {json_kind(state)}, not a table"
     for key in ("version", "scenario_hash", "scenario"):
         if key not in state:
             return f'has no "{key}"'
@@ -118,7 +118,7 @@ def read_state(path: Path) -> dict[str, Any] | str:
 
 
 def set_aside(path: Path, why: str, warn: Warn) -> None:
-    target = path.with_name(path.name + ".bad")
+    target = aside_path(path)
     path.replace(target)
     warn(f"{path}: {why}; set aside as {target.name}.")
 
@@ -170,6 +170,12 @@ def _prepare(
         state = None
     if state is None and table.exists():
         set_aside(table, f"has no {STATE_FILE} to say which scenario it belongs to", warn)
+    other = isinstance(state, dict) and state.get("scenario_hash") != scenario_hash
+    if table.exists() and not resume and other:
+        raise GradfenceInputError(
+            f"{out}: holds a map of another scenario ({summary(table)}); start this one there "
+            "with --fresh (which replaces it), or name another --out."
+        )
     if table.exists() and not resume:
         raise GradfenceInputError(
             f"{out}: holds a map already ({summary(table)}); continue it with --resume, start "

@@ -66,7 +66,13 @@ def run_map(
     from core.memory import check_map_fits, map_sizes, processes_that_fit
 
     check_map_fits(scenario)
-    jobs = processes_that_fit(scenario, *map_sizes(scenario), jobs or os.cpu_count() or 1)
+    asked, wanted = jobs, jobs or os.cpu_count() or 1
+    jobs = processes_that_fit(scenario, *map_sizes(scenario), wanted)
+    if asked is not None and jobs < wanted and cluster is None:
+        warn(
+            f"--jobs {wanted}: {jobs} process{'' if jobs == 1 else 'es'} at once, as many as "
+            f"{os.cpu_count() or 1} cores and the free memory take."
+        )
 
     def summary(table: Path) -> str:
         rows = read_table(table)
@@ -132,6 +138,7 @@ def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[st
     pending = 0
     failure: list[str] = []
     threads: int | None = None
+    ended_early = False  # stopped (Ctrl-C, SIGTERM, the consumer gone) or failed
 
     def handle(kind: str, run_id: int, batch: int, payload: Any) -> None:
         nonlocal pending
@@ -171,9 +178,14 @@ def _execute(text: str, chunks: list[Chunk], jobs: int) -> Iterator[list[dict[st
                 pool.wait(0.5)
         if failure:  # the last chunks may fail after the loop's own check
             raise MapWorkerError(failure[0])
+    except BaseException:
+        ended_early = True
+        raise
     finally:
         if pool is not None:
-            pool.shutdown()
+            # A stopped map keeps only the rows it has; a worker's chunk in flight is trained
+            # again on resume, so there is nothing to wait for.
+            pool.shutdown(at_once=ended_early)
         if threads is not None:
             import torch
 

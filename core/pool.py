@@ -247,13 +247,17 @@ class WorkerPool:
             sending.close()
         return _Worker(process, inbox, receiving)
 
-    def shutdown(self, timeout: float = 2.0) -> None:
-        """End every worker within `timeout` seconds (those that do not finish are killed)."""
+    def shutdown(self, timeout: float = 2.0, at_once: bool = False) -> None:
+        """End every worker within `timeout` seconds (those that do not finish are killed);
+        `at_once` kills them without asking, when nothing they hold is wanted any more."""
         self._closing = True
         self._queue.clear()
         for w in self._workers:
             with contextlib.suppress(OSError, ValueError):
-                w.inbox.put(("quit",))
+                if at_once:
+                    w.process.kill()
+                else:
+                    w.inbox.put(("quit",))
         deadline = time.monotonic() + timeout / 2
         for w in self._workers:
             w.process.join(max(0.0, deadline - time.monotonic()))

@@ -422,7 +422,8 @@ class Scenario:
         """A new scenario with dotted keys replaced (`train.batch_size`, `clip.1.threshold`).
 
         A new method without a new threshold takes that method's default threshold: a global
-        norm of 1 means nothing as an AGC ratio.
+        norm of 1 means nothing as an AGC ratio. Naming the method a table already has keeps
+        its threshold.
         """
         raw = self.to_dict()
         for key, value in overrides.items():
@@ -431,7 +432,10 @@ class Scenario:
             parts = key.split(".")
             new_method = len(parts) == 3 and parts[0] == "clip" and parts[2] == "method"
             if new_method and f"clip.{parts[1]}.threshold" not in overrides:
-                raw["clip"][int(parts[1])].pop("threshold", None)
+                index = int(parts[1])
+                was = self.clip[index].method if index < len(self.clip) else None
+                if raw["clip"][index].get("method") != was:
+                    raw["clip"][index].pop("threshold", None)
         return parse_scenario(raw, source)
 
     def thresholds_for(self, clip: ClipConfig) -> tuple[float, ...]:
@@ -551,11 +555,12 @@ def parse_toml(text: str, source: str) -> dict[str, Any]:
 
 def loads_scenario(text: str, source: str = "<text>", notices: list[str] | None = None) -> Scenario:
     """Validate preset TOML text."""
-    if not text.strip():
+    raw = parse_toml(text, source) if text.strip() else {}
+    if not raw:  # nothing at all, or comments only
         raise GradfenceInputError(
             f"{source}: is empty; a preset needs at least one table, e.g. [[clip]] or [data]."
         )
-    return parse_scenario(parse_toml(text, source), source, notices=notices)
+    return parse_scenario(raw, source, notices=notices)
 
 
 def upgrade_schema(raw: Mapping[str, Any]) -> dict[str, Any]:

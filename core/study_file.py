@@ -93,12 +93,13 @@ def load_study(path: str | Path) -> StudyFile:
 def loads_study(text: str, path: Path, source: str | None = None) -> StudyFile:
     """Study text that belongs at `path` (presets resolve beside it), e.g. a recovery copy."""
     source = source or str(path)
-    if not text.strip():
+    raw = parse_toml(text, source) if text.strip() else {}
+    if not raw:  # nothing at all, or comments only
         raise GradfenceInputError(
             f"{source}: is empty; a study has a title and [[entry]] tables (File > New study "
             "in the app makes one)."
         )
-    return parse_study(parse_toml(text, source), path, source)
+    return parse_study(raw, path, source)
 
 
 def parse_study(raw: Mapping[str, Any], path: Path, source: str | None = None) -> StudyFile:

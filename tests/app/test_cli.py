@@ -3,6 +3,8 @@ and before any work starts. Each test names the old behaviour it guards against 
 
 from __future__ import annotations
 
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -183,6 +185,10 @@ def test_a_new_method_from_the_command_line_takes_that_methods_default_threshold
     )
     assert overridden.clip[1].threshold == written.clip[1].threshold == spec("unit-agc").threshold
     assert overridden.clip[1].threshold != 1.0
+    # Naming the method a table already has keeps its threshold (it was reset to the default).
+    agc = load_preset(str(path), ["clip.1.method=unit-agc", "clip.1.threshold=0.02"])
+    again = agc.with_overrides({"clip.1.method": "unit-agc"})
+    assert again.clip[1].threshold == 0.02 != spec("unit-agc").threshold
 
 
 def test_an_empty_preset_and_an_empty_study_are_not_ok(
@@ -198,6 +204,12 @@ def test_an_empty_preset_and_an_empty_study_are_not_ok(
     assert "ok:" not in captured.out
     assert f"error: {empty_preset}: is empty" in captured.err
     assert f"error: {empty_study}: is empty" in captured.err
+    # A file of comments alone holds nothing either.
+    empty_preset.write_text("# settings to come\n")
+    empty_study.write_text("# entries to come\n\n")
+    assert main(["check", str(empty_preset), str(empty_study)]) == 2
+    captured = capsys.readouterr()
+    assert "ok:" not in captured.out and captured.err.count("is empty") == 2
 
 
 def test_version_prints_the_packaged_version(capsys: pytest.CaptureFixture[str]) -> None:
@@ -226,3 +238,19 @@ def test_presets_lists_where_each_preset_lives_and_train_takes_a_listed_name(
     assert main(["train", "linear-target-shift", "--set", "train.steps=3"]) == 0
     out = capsys.readouterr().out
     assert "Linear regression, shifted targets: batch size" in out
+
+
+def test_a_reader_that_goes_away_ends_the_command_without_a_traceback() -> None:
+    # The previous version printed "internal error" and a BrokenPipeError traceback for
+    # `gradfence presets | head -1`. The pipe is closed before the command writes its first line.
+    process = subprocess.Popen(
+        [sys.executable, "-c", "import sys; from app.cli import main; sys.exit(main(['presets']))"],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
+    assert process.stdout is not None and process.stderr is not None
+    process.stdout.close()
+    with process.stderr:
+        err = process.stderr.read().decode()
+    assert process.wait(timeout=60) == 141  # 128 + SIGPIPE, as a shell reports a closed pipe
+    assert err == ""

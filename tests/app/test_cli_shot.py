@@ -95,6 +95,6 @@ def test_shot_exits_soon_after_its_picture_with_work_still_queued(
     assert time.monotonic() - written < 10.0
     assert process.returncode == 0, err
     assert "2 still training when the picture was taken" in stdout
-    assert f"warning: {bad}: holds NoneType, not a table; set aside" in err
+    assert f"warning: {bad}: holds null, not a table; set aside" in err
     assert gone(mark, 10.0) == []
     assert not QtGui.QImage(str(out)).isNull()

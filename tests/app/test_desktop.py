@@ -64,5 +64,5 @@ def test_a_bad_cache_file_shows_in_the_status_bar(qtbot: QtBot, tmp_path: Path) 
     window.auto_train = False
     window.show()
     message = window.statusBar().currentMessage()
-    assert f"{bad}: holds list, not a table; set aside as {bad.name}.bad" in message
+    assert f"{bad}: holds a list, not a table; set aside as {bad.name}.bad" in message
     window.close()

@@ -87,8 +87,8 @@ def test_a_map_of_another_version_is_not_resumed(tmp_path: Path) -> None:
     ("state", "why"),
     [
         (b"\x00\x9f not json", "does not read"),
-        (b"null", "is not a table"),
-        (b"[1, 2, 3]", "is not a table"),
+        (b"null", "holds null, not a table"),
+        (b"[1, 2, 3]", "holds a list, not a table"),
         (b'{"version": "0.1.0", "members": 108}', 'has no "scenario_hash"'),
     ],
     ids=["garbage", "null", "list", "no-hash"],
@@ -163,7 +163,8 @@ def test_a_second_map_into_the_default_folder_keeps_the_first(
     first = table.read_bytes()
     assert main(["map", "tiny.toml", "--set", "train.lr=0.03", "--jobs", "1"]) == 2
     err = capsys.readouterr().err
-    assert "holds a map already (108 of 108 members finished)" in err and "--fresh" in err
+    assert "holds a map of another scenario (108 of 108 members finished)" in err
+    assert "--fresh" in err and "--resume" not in err
     assert table.read_bytes() == first
 
 
@@ -184,3 +185,36 @@ def test_a_rerun_without_resume_after_a_stop_asks_before_dropping_anything(
     assert (out / TABLE_FILE).read_bytes() == on_file
     assert main(["map", str(preset), "--out", str(out), "--jobs", "1", "--fresh"]) == 0
     assert (out / TABLE_FILE).read_bytes() == reference
+
+
+def test_without_resume_a_folder_of_another_scenario_is_named_so_and_not_offered_a_resume(
+    tmp_path: Path,
+) -> None:
+    # The previous version said "continue it with --resume" here, and --resume then refused:
+    # the folder holds another scenario's map.
+    interrupted(tiny_map(), tmp_path)
+    other = tiny_map().with_overrides({"train.lr": 0.03})
+    with pytest.raises(GradfenceInputError) as refused:
+        run_map(other, tmp_path, jobs=1)
+    message = str(refused.value)
+    assert "holds a map of another scenario" in message and "--fresh" in message
+    assert "--resume" not in message
+
+
+def test_a_file_set_aside_twice_keeps_the_first_one(tmp_path: Path, reference: bytes) -> None:
+    # The previous version renamed the second bad state file over the first `.bad`, and the
+    # table set aside with it over a complete one, without a word.
+    scenario = tiny_map()
+    interrupted(scenario, tmp_path)
+    first_table = (tmp_path / TABLE_FILE).read_bytes()
+    (tmp_path / STATE_FILE).write_bytes(b"not json")
+    run_map(scenario, tmp_path, jobs=1, resume=True, warn=lambda line: None)
+    (tmp_path / STATE_FILE).write_bytes(b"[1, 2, 3]")
+    warnings: list[str] = []
+    run_map(scenario, tmp_path, jobs=1, resume=True, warn=warnings.append)
+    assert (tmp_path / "map-state.json.bad").read_bytes() == b"not json"
+    assert (tmp_path / "map-state.json.bad.2").read_bytes() == b"[1, 2, 3]"
+    assert (tmp_path / "map.csv.bad").read_bytes() == first_table
+    assert (tmp_path / "map.csv.bad.2").read_bytes() == reference  # the finished table
+    assert any("set aside as map.csv.bad.2" in w for w in warnings), warnings
+    assert (tmp_path / TABLE_FILE).read_bytes() == reference

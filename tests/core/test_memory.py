@@ -83,14 +83,20 @@ def test_more_than_eight_hidden_layers_are_refused(
 def test_jobs_are_capped_by_the_cores(tmp_path: Path) -> None:
     # The previous version started 64 processes for --jobs 64 on two cores (10 GB).
     seen: list[int] = []
+    said: list[str] = []
     run_map(
         tiny_map(),
         tmp_path,
         jobs=64,
         on_progress=lambda p: seen.append(len(workers_of(os.getpid()))),
+        warn=said.append,
     )
     cores = os.cpu_count() or 1
     assert max(seen) == cores - 1  # one process per core: the workers, and this one trains too
+    assert said == [
+        f"--jobs 64: {cores} process{'' if cores == 1 else 'es'} at once, as many as {cores} "
+        "cores and the free memory take."
+    ]
 
 
 def test_jobs_are_capped_by_free_memory(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
