@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import contextlib
 import csv
+import hashlib
 import io
 import json
 import math
@@ -35,21 +36,42 @@ Warn = Callable[[str], None]
 
 
 class MapFolder:
-    """Open with `open_folder`; `append` finished rows; `close` releases the lock."""
+    """Open with `open_folder`; `append` finished rows; `close` releases the lock.
 
-    def __init__(self, out: Path, lock: IO[str]) -> None:
+    After every write the state file vouches for the table: its length in bytes and their
+    SHA-256. A kill between a table's append and the state's update leaves the state vouching
+    for a prefix of the table, which still checks (`vouches_for`).
+    """
+
+    def __init__(self, out: Path, lock: IO[str], state: dict[str, Any]) -> None:
         self.out = out
         self._lock = lock
+        self._state = state
         self.table = out / TABLE_FILE
+        self._digest = hashlib.sha256()
+        self._length = 0
 
     def append(self, text: str) -> None:
-        with self.table.open("a", encoding="utf-8", newline="") as f:
-            f.write(text)
+        data = text.encode("utf-8")
+        with self.table.open("ab") as f:
+            f.write(data)
             f.flush()
             os.fsync(f.fileno())
+        self._digest.update(data)
+        self._length += len(data)
+        self._vouch()
 
     def rewrite(self, text: str) -> None:
         write_text_atomic(self.table, text)
+        data = text.encode("utf-8")
+        self._digest, self._length = hashlib.sha256(data), len(data)
+        self._vouch()
+
+    def _vouch(self) -> None:
+        table = {"bytes": self._length, "sha256": self._digest.hexdigest()}
+        write_text_atomic(
+            self.out / STATE_FILE, json.dumps({**self._state, "table": table}, indent=1) + "\n"
+        )
 
     def close(self) -> None:
         with contextlib.suppress(OSError):
@@ -117,6 +139,21 @@ def read_state(path: Path) -> dict[str, Any] | str:
     return state
 
 
+def vouches_for(state: dict[str, Any], table: Path) -> bool:
+    """Whether the state's record of the table (length and SHA-256) matches the table's first
+    bytes; a state file without one (written before it was kept) vouches for any table."""
+    record = state.get("table")
+    if record is None:
+        return True
+    try:
+        length, digest = int(record["bytes"]), str(record["sha256"])
+        with table.open("rb") as f:
+            head = f.read(length)
+    except (OSError, KeyError, TypeError, ValueError):
+        return False
+    return len(head) == length and hashlib.sha256(head).hexdigest() == digest
+
+
 def set_aside(path: Path, why: str, warn: Warn) -> None:
     target = aside_path(path)
     path.replace(target)
@@ -144,7 +181,7 @@ def open_folder(
             _unlock(lock)
             lock.close()
         raise
-    return MapFolder(out, lock)
+    return MapFolder(out, lock, state_of(scenario_hash, content, total))
 
 
 def _prepare(
@@ -194,6 +231,8 @@ def _prepare(
                 f"{__version__}, whose numbers may differ; start over with --fresh, or name "
                 "another --out."
             )
+        if not vouches_for(state, table):
+            set_aside(table, f"is not the table {STATE_FILE} vouches for (it was changed)", warn)
     write_text_atomic(
         state_path, json.dumps(state_of(scenario_hash, content, total), indent=1) + "\n"
     )

@@ -120,9 +120,14 @@ def test_a_table_without_a_state_file_is_set_aside(tmp_path: Path, reference: by
 
 
 def test_a_garbage_cell_costs_its_member_only(tmp_path: Path, reference: bytes) -> None:
-    # The previous version stopped with ValueError on a cell that was not a number.
+    # The previous version stopped with ValueError on a cell that was not a number. Rows are
+    # checked one by one when the state file does not vouch for the table's bytes (one written
+    # before it did); one that does sets a changed table aside whole (the test below).
     scenario = tiny_map()
     interrupted(scenario, tmp_path)
+    state = json.loads((tmp_path / STATE_FILE).read_text())
+    del state["table"]
+    (tmp_path / STATE_FILE).write_text(json.dumps(state))
     table = tmp_path / TABLE_FILE
     lines = table.read_text().splitlines(keepends=True)
     cells = lines[1].split(",")
@@ -217,4 +222,50 @@ def test_a_file_set_aside_twice_keeps_the_first_one(tmp_path: Path, reference: b
     assert (tmp_path / "map.csv.bad").read_bytes() == first_table
     assert (tmp_path / "map.csv.bad.2").read_bytes() == reference  # the finished table
     assert any("set aside as map.csv.bad.2" in w for w in warnings), warnings
+    assert (tmp_path / TABLE_FILE).read_bytes() == reference
+
+
+def test_a_table_swapped_in_under_a_matching_state_file_is_set_aside(
+    tmp_path: Path, reference: bytes
+) -> None:
+    # The previous version resumed in silence (exit 0) from another preset's map.csv copied
+    # over this map's, same grid, under this map's own state file: rows carry no scenario.
+    scenario, other = tiny_map(), tiny_map().with_overrides({"train.lr": 0.03})
+    mine, theirs = tmp_path / "mine", tmp_path / "theirs"
+    interrupted(scenario, mine)
+    interrupted(other, theirs)
+    foreign = (theirs / TABLE_FILE).read_bytes()
+    (mine / TABLE_FILE).write_bytes(foreign)
+    warnings: list[str] = []
+    run_map(scenario, mine, jobs=1, resume=True, warn=warnings.append)
+    assert any("is not the table map-state.json vouches for" in w for w in warnings), warnings
+    assert (mine / "map.csv.bad").read_bytes() == foreign
+    assert (mine / TABLE_FILE).read_bytes() == reference
+
+
+def test_a_kill_between_a_rows_append_and_the_state_leaves_a_table_that_resumes(
+    tmp_path: Path, reference: bytes, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The state vouches for a prefix of the table: rows appended after it are this map's own.
+    from core import map_folder
+
+    scenario = tiny_map()
+    vouched = map_folder.MapFolder._vouch
+    calls = {"n": 0}
+
+    def vouch_then_die(self: map_folder.MapFolder) -> None:
+        calls["n"] += 1
+        if calls["n"] == 3:  # the rewrite, one append vouched for, then killed before the next
+            raise KeyboardInterrupt
+        vouched(self)
+
+    monkeypatch.setattr(map_folder.MapFolder, "_vouch", vouch_then_die)
+    with pytest.raises(KeyboardInterrupt):
+        run_map(scenario, tmp_path, jobs=1)
+    monkeypatch.setattr(map_folder.MapFolder, "_vouch", vouched)
+    state = json.loads((tmp_path / STATE_FILE).read_text())
+    assert state["table"]["bytes"] < len((tmp_path / TABLE_FILE).read_bytes())
+    warnings: list[str] = []
+    run_map(scenario, tmp_path, jobs=1, resume=True, warn=warnings.append)
+    assert warnings == [] and not (tmp_path / "map.csv.bad").exists()
     assert (tmp_path / TABLE_FILE).read_bytes() == reference
