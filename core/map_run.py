@@ -86,7 +86,8 @@ def run_map(
         keys = {p.key(scenario) for c in chunks for p in c.points}
         stray = [r for r in done_rows if row_key(r) not in keys]
         if stray:
-            warn(f"{folder.table}: {len(stray)} rows name no member of this map; dropped.")
+            rows_name = "row names" if len(stray) == 1 else "rows name"
+            warn(f"{folder.table}: {len(stray)} {rows_name} no member of this map; dropped.")
         finished = {row_key(r) for r in done_rows}
         todo = [c for c in chunks if not all(p.key(scenario) in finished for p in c.points)]
         # A chunk only partly on file (a kill that tore its append) is redone whole.
