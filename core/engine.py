@@ -191,6 +191,10 @@ class StackPass:
         self.any_skip = bool(self.skips.any())
         self.no_skip = torch.zeros(len(members), dtype=torch.bool)
         self._empty = torch.empty(0, dtype=dtype)
+        self._buffer: tuple[torch.Tensor, list[torch.Tensor]] | None = None
+        # Set by an engine, whose steps use their gradient up within the step: one buffer then
+        # serves every step. Off for a caller that may keep PassResult.grads of several passes.
+        self.reuse_buffer = False
         self.skip_factor = torch.tensor([m.clip.skip_factor for m in members], dtype=dtype)
         self.noisy = [i for i, m in enumerate(members) if m.clip.noise_multiplier > 0]
         self.noise_generators = {
@@ -206,12 +210,16 @@ class StackPass:
         outlier: torch.Tensor,
         detail: bool,
         split: bool = False,
+        has_outlier: bool | None = None,
     ) -> PassResult:
         """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views.
 
         `detail` adds every statistic of a logged step; `split` alone adds only the outlier
         share and pass-through (cheap: the outlier examples are gathered, not masked).
+        `has_outlier`, when the caller knows it, is whether the batch holds any outlier.
         """
+        if has_outlier is None:
+            has_outlier = bool(outlier.any())
         arch = self.arch
         K, B = x.shape[:2]
         # dz is taken of the reduced loss (mean or sum), so plain sums of dz^T a are the batch
@@ -281,12 +289,15 @@ class StackPass:
 
         # The applied gradient is the same sum whether the step is logged or not, so logging
         # never changes a trajectory; logged steps add the clean and outlier parts beside it.
-        flat = self._gradient_sum(inputs, dz, rows_w, bias_w)
-        light = split and not detail and bool(outlier.any())
+        into = self._flat_buffer(K) if self.reuse_buffer else None
+        flat = self._gradient_sum(inputs, dz, rows_w, bias_w, into=into)
+        light = split and not detail and has_outlier
         parts = None
         if detail or light:
             # A copy: batch-mean clipping below scales `flat` in place.
-            parts = self._parts(inputs, dz, rows_w, bias_w, outlier, flat.clone(), plain=detail)
+            parts = self._parts(
+                inputs, dz, rows_w, bias_w, outlier, flat.clone(), detail, has_outlier
+            )
 
         coef_all = torch.ones_like(flat) if parts is not None else None
         for g in batch_groups:
@@ -331,6 +342,14 @@ class StackPass:
         if self.any_skip:
             skip = self.skips & ~(watched <= self.skip_factor * levels)
         return PassResult(flat, loss, raw_norms, watched, levels, share, skip, detail_stats)
+
+    def _flat_buffer(self, K: int) -> tuple[torch.Tensor, list[torch.Tensor]]:
+        """The step's flat gradient buffer (K, P) and its views, made once (`reuse_buffer`)."""
+        buffer = self._buffer
+        if buffer is None or buffer[0].shape[0] != K:
+            flat = torch.empty(K, self.layout.total, dtype=self.dtype)
+            buffer = self._buffer = (flat, self.layout.views(flat))
+        return buffer
 
     def blank(self, K: int, fill: float) -> torch.Tensor:
         """A per-member buffer; empty when one group spans the stack and will replace it."""
@@ -398,6 +417,7 @@ class StackPass:
         outlier: torch.Tensor,
         weighted_sum: torch.Tensor,
         plain: bool,
+        has_outlier: bool,
     ) -> list[torch.Tensor | None]:
         """(clean weighted, outlier weighted, clean plain, outlier plain, whole plain) flat
         (K, P) parts of the batch gradient before batch-mean clipping; the plain sums only when
@@ -412,7 +432,7 @@ class StackPass:
         whole_plain = None
         if plain:
             whole_plain = self._gradient_sum(inputs, dz, None, None) if weighted else weighted_sum
-        if not bool(outlier.any()):
+        if not has_outlier:
             zeros = torch.zeros_like(weighted_sum)
             return [weighted_sum, zeros, whole_plain, zeros, whole_plain]
         out_w, out_u = self._outlier_sums(inputs, dz, rows_w, bias_w, outlier)
@@ -519,11 +539,15 @@ class StackPass:
         dz: list[torch.Tensor],
         rows_w: list[torch.Tensor] | None,
         bias_w: list[torch.Tensor] | None,
+        into: tuple[torch.Tensor, list[torch.Tensor]] | None = None,
     ) -> torch.Tensor:
-        """sum_i (dz_i * w_i) a_i^T per layer, written once into a flat (K, P) gradient."""
-        K = dz[0].shape[0]
-        flat = torch.empty(K, self.layout.total, dtype=self.dtype)
-        views = self.layout.views(flat)
+        """sum_i (dz_i * w_i) a_i^T per layer, written once into a flat (K, P) gradient (into
+        `into`, a buffer and its per-parameter views, when given)."""
+        if into is None:
+            flat = torch.empty(dz[0].shape[0], self.layout.total, dtype=self.dtype)
+            views = self.layout.views(flat)
+        else:
+            flat, views = into
         for layer, (a, d) in enumerate(zip(inputs, dz, strict=True)):
             d_rows = d_bias = d
             if rows_w is not None and bias_w is not None:
@@ -730,6 +754,16 @@ class Engine:
         )
         self.keep_norms = keep_norms  # logged records carry the step's per-example norms
         self.grad_pass.want_norms = trace
+        self.grad_pass.reuse_buffer = True
+        # Whether each step's batch holds an outlier, known from the plan: no per-step check.
+        self.step_has_outlier: list[bool] = (
+            self.outlier_train[self.batches].any(dim=2).any(dim=0).tolist()
+        )
+        # Plain SGD (no momentum, no weight decay) is theta -= lr * grad: torch.optim's
+        # single-tensor step does exactly this add_, so stepping it here is the same to the bit
+        # without the optimizer's per-call overhead.
+        t = train
+        self.plain_sgd = t.optimizer == "sgd" and t.momentum == 0 and t.weight_decay == 0
         self.grad_pass.data_nonfinite = not (
             bool(torch.isfinite(self.x_train).all()) and bool(torch.isfinite(self.y_train).all())
         )
@@ -774,19 +808,21 @@ class Engine:
             x, y, outlier = x.expand(K, -1, -1), y.expand(K, -1), outlier.expand(K, -1)
         else:
             x, y, outlier = x[self.member_slot], y[self.member_slot], outlier[self.member_slot]
-        result = self.grad_pass.run(self.params, x, y, outlier, logged, self.outlier_steps)
+        has_outlier = self.step_has_outlier[step - 1]
+        result = self.grad_pass.run(
+            self.params, x, y, outlier, logged, self.outlier_steps, has_outlier
+        )
         self._last_outlier = outlier
         if self.example_norms is not None and result.norms is not None:
             self.example_norms[:, step - 1] = result.norms.double().numpy()
 
-        if bool(outlier.any()):
+        if has_outlier:
             n_clean = (~outlier).sum(dim=1).clamp(min=1).to(self.dtype)
             clean_loss = torch.where(outlier, 0.0, result.loss).sum(dim=1) / n_clean
         else:
             clean_loss = result.loss.mean(dim=1)
         # A skipped spike may carry a non-finite gradient; a bad clean loss is never excused.
-        total = result.grads.sum(dim=1)
-        grad_ok = (total - total) == 0  # false for inf and NaN
+        grad_ok = torch.isfinite(result.grads.sum(dim=1))
         if self.grad_pass.any_skip:
             grad_ok |= result.skip
         ok = (clean_loss <= explode) & grad_ok
@@ -811,6 +847,10 @@ class Engine:
     def _apply(self, grads: torch.Tensor, frozen: torch.Tensor | None) -> None:
         """One optimizer step; frozen members (diverged or skipping) keep parameters and state."""
         if frozen is None or not bool(frozen.any()):
+            if self.plain_sgd:
+                for (a, b), param in zip(self.blocks, self.block_params, strict=True):
+                    param.add_(grads[a:b], alpha=-self.lr)
+                return
             for (a, b), param in zip(self.blocks, self.block_params, strict=True):
                 param.grad = grads[a:b]
             self.optimizer.step()
