@@ -762,8 +762,9 @@ class Engine:
         # Plain SGD (no momentum, no weight decay) is theta -= lr * grad: torch.optim's
         # single-tensor step does exactly this add_, so stepping it here is the same to the bit
         # without the optimizer's per-call overhead.
-        t = train
-        self.plain_sgd = t.optimizer == "sgd" and t.momentum == 0 and t.weight_decay == 0
+        self.plain_sgd = (
+            train.optimizer == "sgd" and train.momentum == 0 and train.weight_decay == 0
+        )
         self.grad_pass.data_nonfinite = not (
             bool(torch.isfinite(self.x_train).all()) and bool(torch.isfinite(self.y_train).all())
         )

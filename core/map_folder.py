@@ -36,7 +36,8 @@ Warn = Callable[[str], None]
 
 
 class MapFolder:
-    """Open with `open_folder`; `append` finished rows; `close` releases the lock.
+    """Open with `open_folder`, then `rewrite` the table (which writes the state file too);
+    `append` finished rows; `close` releases the lock.
 
     After every write the state file vouches for the table: its length in bytes and their
     SHA-256. A kill between a table's append and the state's update leaves the state vouching
@@ -175,7 +176,7 @@ def open_folder(
     check_out_folder(out)
     lock = _lock_folder(out)
     try:
-        _prepare(out, scenario_hash, content, total, resume, fresh, warn, summary)
+        _prepare(out, scenario_hash, resume, fresh, warn, summary)
     except BaseException:
         with contextlib.suppress(OSError):
             _unlock(lock)
@@ -187,8 +188,6 @@ def open_folder(
 def _prepare(
     out: Path,
     scenario_hash: str,
-    content: dict[str, Any],
-    total: int,
     resume: bool,
     fresh: bool,
     warn: Warn,
@@ -219,7 +218,7 @@ def _prepare(
             "over with --fresh, or name another --out."
         )
     if resume and isinstance(state, dict) and table.exists():
-        if state.get("scenario_hash") != scenario_hash:
+        if other:
             raise GradfenceInputError(
                 f"{out}: holds a map of another scenario (hash {state.get('scenario_hash')}, "
                 f"this one {scenario_hash}); resume it with the preset it was made from, start "
@@ -233,9 +232,6 @@ def _prepare(
             )
         if not vouches_for(state, table):
             set_aside(table, f"is not the table {STATE_FILE} vouches for (it was changed)", warn)
-    write_text_atomic(
-        state_path, json.dumps(state_of(scenario_hash, content, total), indent=1) + "\n"
-    )
 
 
 def parse_rows(
