@@ -14,6 +14,7 @@ class EntryHeader(QtWidgets.QHBoxLayout):
     def __init__(self, train_text: str, train_tip: str) -> None:
         super().__init__()
         self.state_label = QtWidgets.QLabel()
+        self._ink = ""  # the state line's colour as last set: a style sheet is set on a change only
         self.addWidget(self.state_label, 1)
         self.train_button = QtWidgets.QPushButton(train_text)
         self.train_button.setToolTip(train_tip)
@@ -28,6 +29,9 @@ class EntryHeader(QtWidgets.QHBoxLayout):
         """The state line (in the warning colour for an edited or failed entry) and whether
         Train or Stop applies."""
         self.state_label.setText(text)
-        self.state_label.setStyleSheet(f"color: {WARN if warn else OK_INK}")
+        ink = WARN if warn else OK_INK
+        if ink != self._ink:  # not re-polished on every record batch
+            self._ink = ink
+            self.state_label.setStyleSheet(f"color: {ink}")
         self.train_button.setEnabled(not working)
         self.stop_button.setEnabled(working)

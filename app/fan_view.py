@@ -20,7 +20,7 @@ from core.fan import FAN_SIZE, fan_factors, member_for
 from core.fan_model import FanModel, StackData, clip_regime
 from core.scenario import ClipConfig
 
-LIVE_S = 0.1  # while records stream in, the plots redraw at most 10 times a second
+LIVE_S = 0.2  # while records stream in, the plots redraw at most 5 times a second
 
 
 class FanView(QtWidgets.QFrame):

@@ -823,10 +823,13 @@ class Engine:
         else:
             clean_loss = result.loss.mean(dim=1)
         # A skipped spike may carry a non-finite gradient; a bad clean loss is never excused.
-        grad_ok = torch.isfinite(result.grads.sum(dim=1))
+        grad_sum = result.grads.sum(dim=1)  # finite exactly when every entry is
         if self.grad_pass.any_skip:
-            grad_ok |= result.skip
-        ok = (clean_loss <= explode) & grad_ok
+            ok = (clean_loss <= explode) & (torch.isfinite(grad_sum) | result.skip)
+        else:
+            # loss + 0 * sum is the loss itself for a finite sum and NaN otherwise, which fails
+            # the comparison: both checks in two operations.
+            ok = torch.add(clean_loss, grad_sum, alpha=0.0) <= explode
         newly = self.nobody
         if not bool(ok.all()):
             newly = self.alive & ~ok
