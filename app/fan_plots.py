@@ -82,6 +82,11 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
         self.hist_lines: dict[str, pg.InfiniteLine] = {}
         self.curves: Curves = {}
         self.faded: Curves = {}
+        # What each label's curves show now, (stack, member, rows) or None for nothing: a
+        # curve whose member has no new rows is not set again (each setData re-bounds and
+        # repaints its plot; a fan without earlier results cleared 21 empty faded curves on
+        # every live redraw).
+        self._shown: dict[tuple[bool, str], tuple[StackData, int, int] | None] = {}
 
     def use_columns(self, columns: int) -> None:
         """Lay the plots out in `columns` columns (2 in a study, 3 on a wide slide)."""
@@ -107,6 +112,7 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
             self.plots["hist"].removeItem(line)
         self.legend.clear()
         self.curves, self.faded, self.hist_lines = {}, {}, {}
+        self._shown = {}
         solid, dash = QtCore.Qt.PenStyle.SolidLine, QtCore.Qt.PenStyle.DashLine
         dotted = QtCore.Qt.PenStyle.DotLine
         for index, (clip, occurrence) in enumerate(clips):
@@ -163,11 +169,18 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
         """Point the curves of `label` at its member nearest `factor` in `stack`."""
         curves = self.faded if faded else self.curves
         if stack is None or not any(m.name == label for m in stack.members):
+            if (faded, label) in self._shown and self._shown[(faded, label)] is None:
+                return
+            self._shown[(faded, label)] = None
             for key in SERIES:
                 if (label, key) in curves:
                     curves[(label, key)].setData([], [])
             return
         i = member_for(stack.members, label, factor)
+        shown = self._shown.get((faded, label))
+        if shown is not None and shown[0] is stack and shown[1:] == (i, stack.rows(i)):
+            return
+        self._shown[(faded, label)] = (stack, i, stack.rows(i))
         rows = slice(0, stack.rows(i))
         x, v = stack.steps[rows], stack.values
         series = {

@@ -231,8 +231,12 @@ class StackPass:
         sq: torch.Tensor | None = None
         raw_norms = norms = None
         if self.any_per_example or detail or self.want_norms:
-            sq = clipping.example_sq_norms(inputs, dz) * (1.0 / reduce**2)
-            raw_norms = norms = torch.sqrt(sq)
+            sq = clipping.example_sq_norms(inputs, dz).mul_(1.0 / reduce**2)
+            if detail:
+                raw_norms = norms = torch.sqrt(sq)
+            else:  # nothing after reads the squares: the norms take their place
+                raw_norms = norms = sq.sqrt_()
+                sq = None
         # Between logged steps a stack of batch-mean methods never looks at per-example norms.
 
         maybe_nonfinite = self.data_nonfinite and self.any_per_example
@@ -259,8 +263,8 @@ class StackPass:
                 continue
             if rows_w is None or bias_w is None:
                 if len(self.groups) == 1 and g.whole:  # the group's weights are all there is
-                    rows_w = [torch.empty(0, dtype=self.dtype)] * arch.layers
-                    bias_w = [torch.empty(0, dtype=self.dtype)] * arch.layers
+                    rows_w = [self._empty] * arch.layers
+                    bias_w = [self._empty] * arch.layers
                 else:
                     rows_w = [torch.ones_like(d) for d in dz]
                     bias_w = [torch.ones_like(d[..., 0]) for d in dz]
