@@ -137,6 +137,27 @@ def test_an_edit_keeps_the_earlier_curves_faded_and_never_as_current(
     assert not model.edited and drawn(view.curves) > 0 and drawn(view.faded) == 0
 
 
+def test_a_curve_is_set_again_for_other_results_with_as_many_rows(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    """The plots skip a curve whose member has no new rows; results of the same shape in
+    another stack (a restore from the cache, a retrain) must still be drawn."""
+    import dataclasses
+
+    view = trained(qtbot, window)
+    batch = view.batch_size
+    stack = view.model.stacks[batch]
+    label = view.model.scenario.clip[0].display_name
+    curve = view.curves[(label, "loss")]
+    before = np.array(curve.getOriginalDataset()[1])
+    other = dataclasses.replace(stack, values={name: 2.0 * v for name, v in stack.values.items()})
+    view.model.stacks = {**view.model.stacks, batch: other}
+    view.refresh()
+    after = np.array(curve.getOriginalDataset()[1])
+    assert after.shape == before.shape and after.size > 0
+    np.testing.assert_array_equal(after, 2.0 * before)  # the new values, not the old ones kept
+
+
 def test_results_are_cached_beside_the_study_by_scenario_hash(
     qtbot: QtBot, window: MainWindow
 ) -> None:
