@@ -92,13 +92,30 @@ class Compared:
     weigh: Callable[[torch.Tensor], ExampleWeights]  # level (k,) -> weights
 
 
-def example_sq_norms(inputs: list[torch.Tensor], dz: list[torch.Tensor]) -> torch.Tensor:
-    """Per-example squared gradient norm (K, B): sum_l |dz_l|^2 (|a_l|^2 + 1)."""
-    first = torch.linalg.vecdot(inputs[0], inputs[0]) + 1.0
-    total: torch.Tensor = torch.linalg.vecdot(dz[0], dz[0]) * first
+def example_sq_norms(
+    inputs: list[torch.Tensor],
+    dz: list[torch.Tensor],
+    scale: float = 1.0,
+    first: torch.Tensor | None = None,
+) -> torch.Tensor:
+    """Per-example squared gradient norm (K, B), times `scale`: scale sum_l |dz_l|^2 (|a_l|^2 + 1).
+
+    `first`, when given, is the first layer's factor scale (|a_0|^2 + 1) (K, B): its inputs are
+    the data, so a caller can compute it once for the whole training set (`input_factor`).
+    """
+    if first is None:
+        first = input_factor(inputs[0], scale)
+    total: torch.Tensor = torch.linalg.vecdot(dz[0], dz[0]).mul_(first)
     for a, d in zip(inputs[1:], dz[1:], strict=True):
-        total.addcmul_(torch.linalg.vecdot(d, d), torch.linalg.vecdot(a, a) + 1.0)
+        dd = torch.linalg.vecdot(d, d)
+        total.addcmul_(dd, torch.linalg.vecdot(a, a), value=scale).add_(dd, alpha=scale)
     return total
+
+
+def input_factor(x: torch.Tensor, scale: float = 1.0) -> torch.Tensor:
+    """scale (|x|^2 + 1) per example of x (..., in): the first layer's factor of the norms."""
+    factor: torch.Tensor = torch.linalg.vecdot(x, x).add_(1.0)
+    return factor if scale == 1.0 else factor.mul_(scale)
 
 
 def _cap(threshold: torch.Tensor, norm: torch.Tensor) -> torch.Tensor:

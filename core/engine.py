@@ -211,12 +211,15 @@ class StackPass:
         detail: bool,
         split: bool = False,
         has_outlier: bool | None = None,
+        first: torch.Tensor | None = None,
     ) -> PassResult:
         """One pass: x (K, B, in), y (K, B), outlier (K, B) bool; params are (K, ...) views.
 
         `detail` adds every statistic of a logged step; `split` alone adds only the outlier
         share and pass-through (cheap: the outlier examples are gathered, not masked).
         `has_outlier`, when the caller knows it, is whether the batch holds any outlier.
+        `first`, when the caller has it, is the batch's rows of `input_factor` (K, B), used
+        when the pass takes per-example norms (`takes_norms`).
         """
         if has_outlier is None:
             has_outlier = bool(outlier.any())
@@ -230,8 +233,8 @@ class StackPass:
         dz = backward(arch, params, inputs, pre, d_out * reduce)
         sq: torch.Tensor | None = None
         raw_norms = norms = None
-        if self.any_per_example or detail or self.want_norms:
-            sq = clipping.example_sq_norms(inputs, dz).mul_(1.0 / reduce**2)
+        if self.takes_norms(detail):
+            sq = clipping.example_sq_norms(inputs, dz, 1.0 / reduce**2, first)
             if detail:
                 raw_norms = norms = torch.sqrt(sq)
             else:  # nothing after reads the squares: the norms take their place
@@ -346,6 +349,17 @@ class StackPass:
         if self.any_skip:
             skip = self.skips & ~(watched <= self.skip_factor * levels)
         return PassResult(flat, loss, raw_norms, watched, levels, share, skip, detail_stats)
+
+    def takes_norms(self, detail: bool) -> bool:
+        """Whether a pass takes per-example norms: for per-example methods, on logged steps and
+        for an engine that traces them; between logged steps batch-mean methods never look."""
+        return self.any_per_example or detail or self.want_norms
+
+    def input_factor(self, x: torch.Tensor, batch: int) -> torch.Tensor:
+        """The first layer's factor of the per-example squared norms, for each example of x
+        (N, in) in batches of `batch`: it depends on the data alone, so an engine takes it once."""
+        reduce = 1.0 / batch if self.reduction == "mean" else 1.0
+        return clipping.input_factor(x, 1.0 / reduce**2)
 
     def _flat_buffer(self, K: int) -> tuple[torch.Tensor, list[torch.Tensor]]:
         """The step's flat gradient buffer (K, P) and its views, made once (`reuse_buffer`)."""
@@ -759,6 +773,7 @@ class Engine:
         self.keep_norms = keep_norms  # logged records carry the step's per-example norms
         self.grad_pass.want_norms = trace
         self.grad_pass.reuse_buffer = True
+        self.input_factor = self.grad_pass.input_factor(self.x_train, self.batch_size)  # (N,)
         # Whether each step's batch holds an outlier, known from the plan: no per-step check.
         self.step_has_outlier: list[bool] = (
             self.outlier_train[self.batches].any(dim=2).any(dim=0).tolist()
@@ -814,8 +829,14 @@ class Engine:
         else:
             x, y, outlier = x[self.member_slot], y[self.member_slot], outlier[self.member_slot]
         has_outlier = self.step_has_outlier[step - 1]
+        first = None
+        if self.grad_pass.takes_norms(logged):
+            first = self.input_factor[rows]
+            first = (
+                first.expand(len(self.members), -1) if self.single_seed else first[self.member_slot]
+            )
         result = self.grad_pass.run(
-            self.params, x, y, outlier, logged, self.outlier_steps, has_outlier
+            self.params, x, y, outlier, logged, self.outlier_steps, has_outlier, first
         )
         self._last_outlier = outlier
         if self.example_norms is not None and result.norms is not None:
