@@ -92,24 +92,38 @@ class Compared:
     weigh: Callable[[torch.Tensor], ExampleWeights]  # level (k,) -> weights
 
 
+Squares = tuple[list[torch.Tensor | None], list[torch.Tensor | None]]
+
+
 def example_sq_norms(
     inputs: list[torch.Tensor],
     dz: list[torch.Tensor],
     scale: float = 1.0,
     first: torch.Tensor | None = None,
+    known: Squares | None = None,
 ) -> torch.Tensor:
     """Per-example squared gradient norm (K, B), times `scale`: scale sum_l |dz_l|^2 (|a_l|^2 + 1).
 
     `first`, when given, is the first layer's factor scale (|a_0|^2 + 1) (K, B): its inputs are
     the data, so a caller can compute it once for the whole training set (`input_factor`).
+    `known` holds factors |a_l|^2 + 1 and squares |dz_l|^2 already taken, None where not
+    (`core.model.Workspace.squares`).
     """
+    factors, squares = known if known is not None else ([None] * len(dz), [None] * len(dz))
     if first is None:
         first = input_factor(inputs[0], scale)
-    total: torch.Tensor = torch.linalg.vecdot(dz[0], dz[0]).mul_(first)
-    for a, d in zip(inputs[1:], dz[1:], strict=True):
-        dd = torch.linalg.vecdot(d, d)
-        total.addcmul_(dd, torch.linalg.vecdot(a, a), value=scale).add_(dd, alpha=scale)
+    total: torch.Tensor = torch.mul(_square(dz[0], squares[0]), first)
+    for layer in range(1, len(dz)):
+        factor = factors[layer]
+        if factor is None:
+            factor = torch.linalg.vecdot(inputs[layer], inputs[layer]).add_(1.0)
+        total.addcmul_(_square(dz[layer], squares[layer]), factor, value=scale)
     return total
+
+
+def _square(t: torch.Tensor, known: torch.Tensor | None) -> torch.Tensor:
+    """|t|^2 per example of t (..., n), unless already `known`."""
+    return torch.linalg.vecdot(t, t) if known is None else known
 
 
 def input_factor(x: torch.Tensor, scale: float = 1.0) -> torch.Tensor:

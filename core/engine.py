@@ -31,6 +31,7 @@ from core.model import (
     Architecture,
     Evaluator,
     ParamLayout,
+    Workspace,
     architecture,
     backward,
     bmm,
@@ -192,6 +193,7 @@ class StackPass:
         self.no_skip = torch.zeros(len(members), dtype=torch.bool)
         self._empty = torch.empty(0, dtype=dtype)
         self._buffer: tuple[torch.Tensor, list[torch.Tensor]] | None = None
+        self._space: Workspace | None = None
         # Set by an engine, whose steps use their gradient up within the step: one buffer then
         # serves every step. Off for a caller that may keep PassResult.grads of several passes.
         self.reuse_buffer = False
@@ -228,13 +230,16 @@ class StackPass:
         # dz is taken of the reduced loss (mean or sum), so plain sums of dz^T a are the batch
         # gradient; per-example quantities divide the reduction out again.
         reduce = 1.0 / B if self.reduction == "mean" else 1.0
-        inputs, pre = forward(arch, params, x)
+        # Every pass writes into a workspace, whether or not it takes norms, so that a step's
+        # arithmetic never depends on whether it is logged.
+        space = self._workspace(K, B)
+        inputs, pre = forward(arch, params, x, space)
         loss, d_out = example_losses(arch, pre[-1], y)
-        dz = backward(arch, params, inputs, pre, d_out * reduce)
+        dz = backward(arch, params, inputs, pre, d_out * reduce, space)
         sq: torch.Tensor | None = None
         raw_norms = norms = None
         if self.takes_norms(detail):
-            sq = clipping.example_sq_norms(inputs, dz, 1.0 / reduce**2, first)
+            sq = clipping.example_sq_norms(inputs, dz, 1.0 / reduce**2, first, space.squares())
             if detail:
                 raw_norms = norms = torch.sqrt(sq)
             else:  # nothing after reads the squares: the norms take their place
@@ -360,6 +365,13 @@ class StackPass:
         (N, in) in batches of `batch`: it depends on the data alone, so an engine takes it once."""
         reduce = 1.0 / batch if self.reduction == "mean" else 1.0
         return clipping.input_factor(x, 1.0 / reduce**2)
+
+    def _workspace(self, K: int, B: int) -> Workspace:
+        """The blocks a pass writes its hidden tensors into: made once under `reuse_buffer`."""
+        space = self._space
+        if space is None or space.shape != (K, B) or not self.reuse_buffer:
+            space = self._space = Workspace(self.arch, K, B, self.dtype)
+        return space
 
     def _flat_buffer(self, K: int) -> tuple[torch.Tensor, list[torch.Tensor]]:
         """The step's flat gradient buffer (K, P) and its views, made once (`reuse_buffer`)."""

@@ -17,7 +17,7 @@ import torch
 
 from core import clipping
 from core.data import Dataset
-from core.engine import Engine, Member, StackPass
+from core.engine import Engine, Member, PassResult, StackPass
 from core.reference import (
     clip_examples_by_norm,
     clip_examples_by_unit,
@@ -51,6 +51,12 @@ class Batch:
         self, *clips: ClipConfig, reduction: str = "mean", seeds: list[int] | None = None
     ) -> torch.Tensor:
         """The engine's clipped gradient (K, P) for one member per clip config."""
+        return self.result(*clips, reduction=reduction, seeds=seeds).grads
+
+    def result(
+        self, *clips: ClipConfig, reduction: str = "mean", seeds: list[int] | None = None
+    ) -> PassResult:
+        """The engine's logged pass for one member per clip config."""
         members = [Member(c, s) for c, s in zip(clips, seeds or [0] * len(clips), strict=True)]
         K = len(members)
         grad_pass = StackPass(
@@ -64,7 +70,7 @@ class Batch:
             self.outlier.expand(K, *self.outlier.shape),
             detail=True,
         )
-        return result.grads
+        return result
 
     def weights(self) -> list[torch.Tensor]:
         return [p.detach() for p in self.model.parameters()]
@@ -76,6 +82,7 @@ def make_batch(
     exclude_head: bool = True,
     task: str = "blobs",
     outliers: dict[str, Any] | None = None,
+    hidden: tuple[int, ...] = (8, 8),
 ) -> Batch:
     regression = task in ("linear", "teacher")
     scenario = parse_scenario(
@@ -83,7 +90,11 @@ def make_batch(
             "data": {"task": task, "dim": 3, "noise": 0.3}
             if regression
             else {"task": task, "dim": 3, "classes": 3, "noise": 1.0},
-            "model": {"hidden": [8, 8], "activation": activation, "exclude_head": exclude_head},
+            "model": {
+                "hidden": list(hidden),
+                "activation": activation,
+                "exclude_head": exclude_head,
+            },
             "outliers": outliers or {"kind": "none"},
             "train": {"batch_size": batch},
         }
@@ -233,6 +244,21 @@ def test_example_norm_matches_per_example_clipping_of_torch_func_gradients(activ
     torch.testing.assert_close(
         got, clip_examples_by_norm(b.examples, threshold), rtol=RTOL, atol=1e-15
     )
+
+
+@pytest.mark.parametrize("batch", [4, 12])
+@pytest.mark.parametrize("activation", ["tanh", "relu", "gelu"])
+def test_per_example_norms_of_layers_of_several_widths_match_torch_func(
+    activation: str, batch: int
+) -> None:
+    """The pass takes the squared norms of all hidden tensors of one width in one reduction
+    (core.model.Workspace): widths 8, 5, 8 make a block of four tensors and one of two, laid
+    out with the examples innermost at B = 12 and outermost at B = 4. Reference: the norms of
+    torch.func's per-example gradients."""
+    b = make_batch(activation, batch=batch, hidden=(8, 5, 8))
+    norms = b.result(ClipConfig(method="example-norm", threshold=1.0)).norms
+    assert norms is not None
+    torch.testing.assert_close(norms[0], flat(b.examples).norm(dim=1), rtol=RTOL, atol=1e-15)
 
 
 def test_example_norm_with_sum_reduction_is_the_clipped_sum() -> None:
