@@ -81,7 +81,9 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
         )
         self.hist_lines: dict[str, pg.InfiniteLine] = {}
         self.curves: Curves = {}
-        self.faded: Curves = {}
+        self.faded: Curves = {}  # made on first use (`_add_series`)
+        self._looks: dict[str, tuple[int, str, QtCore.Qt.PenStyle]] = {}
+        self._hidden: set[str] = set()  # labels whose curves are switched off
         # What each label's curves show now, (stack, member, rows) or None for nothing: a
         # curve whose member has no new rows is not set again (each setData re-bounds and
         # repaints its plot; a fan without earlier results cleared 21 empty faded curves on
@@ -112,29 +114,14 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
             self.plots["hist"].removeItem(line)
         self.legend.clear()
         self.curves, self.faded, self.hist_lines = {}, {}, {}
-        self._shown = {}
+        self._shown, self._looks, self._hidden = {}, {}, set()
         solid, dash = QtCore.Qt.PenStyle.SolidLine, QtCore.Qt.PenStyle.DashLine
         dotted = QtCore.Qt.PenStyle.DotLine
         for index, (clip, occurrence) in enumerate(clips):
             label, color = clip.display_name, method_color(clip.method)
             style = LINE_STYLES[occurrence % len(LINE_STYLES)]
-            for faded, target in ((True, self.faded), (False, self.curves)):
-                target[(label, "loss")] = self.plots["loss"].plot(pen=pen(color, style, faded))
-                target[(label, "pre")] = self.plots["norms"].plot(pen=pen(color, style, faded))
-                target[(label, "post")] = self.plots["norms"].plot(pen=pen(color, dash, faded))
-                target[(label, "clipped")] = self.plots["clipped"].plot(
-                    pen=pen(color, style, faded)
-                )
-                target[(label, "share")] = self.plots["share"].plot(
-                    pen=pen(color, style, faded), connect="finite"
-                )
-                target[(label, "pass")] = self.plots["pass"].plot(
-                    pen=None,
-                    symbol=MARKERS[index % len(MARKERS)],
-                    symbolSize=6,
-                    symbolBrush=pg.mkBrush(color + ("46" if faded else "C8")),
-                    symbolPen=None,
-                )
+            self._looks[label] = (index, color, style)
+            self._add_series(label, faded=False)
             if clip.spec.compares == BATCH_NORM:
                 self.curves[(label, "level")] = self.plots["norms"].plot(
                     pen=pen(color, dotted, width=1.5)
@@ -157,7 +144,38 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
         self.legend.addItem(self.hist_clean, "clean examples")
         self.legend.addItem(self.hist_outlier, "outliers")
 
+    def _add_series(self, label: str, faded: bool) -> None:
+        """The curves of one member's series, live or faded. Faded curves are made when a fan
+        first has earlier results to show (half the curves, and a tenth of the window's start,
+        otherwise made for nothing) and lie beneath the live ones."""
+        index, color, style = self._looks[label]
+        dash = QtCore.Qt.PenStyle.DashLine
+        target = self.faded if faded else self.curves
+        made = {
+            "loss": self.plots["loss"].plot(pen=pen(color, style, faded)),
+            "pre": self.plots["norms"].plot(pen=pen(color, style, faded)),
+            "post": self.plots["norms"].plot(pen=pen(color, dash, faded)),
+            "clipped": self.plots["clipped"].plot(pen=pen(color, style, faded)),
+            "share": self.plots["share"].plot(pen=pen(color, style, faded), connect="finite"),
+            "pass": self.plots["pass"].plot(
+                pen=None,
+                symbol=MARKERS[index % len(MARKERS)],
+                symbolSize=6,
+                symbolBrush=pg.mkBrush(color + ("46" if faded else "C8")),
+                symbolPen=None,
+            ),
+        }
+        for key, curve in made.items():
+            if faded:
+                curve.setZValue(-1)
+                curve.setVisible(label not in self._hidden)
+            target[(label, key)] = curve
+
     def set_visible(self, label: str, visible: bool) -> None:
+        if visible:
+            self._hidden.discard(label)
+        else:
+            self._hidden.add(label)
         for curves in (self.curves, self.faded):
             for (name, _), curve in curves.items():
                 if name == label:
@@ -176,6 +194,8 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
                 if (label, key) in curves:
                     curves[(label, key)].setData([], [])
             return
+        if faded and (label, "loss") not in curves:
+            self._add_series(label, faded=True)
         i = member_for(stack.members, label, factor)
         shown = self._shown.get((faded, label))
         if shown is not None and shown[0] is stack and shown[1:] == (i, stack.rows(i)):

@@ -177,6 +177,8 @@ class FanView(QtWidgets.QFrame):
         return out
 
     def _build_curves(self) -> None:
+        # Members switched off stay off through an edit of the scenario.
+        off = {label for label, check in self.method_checks.items() if not check.isChecked()}
         self.canvas.build(self._labels())
         for check in self.method_checks.values():
             self.methods_row.removeWidget(check)
@@ -185,7 +187,9 @@ class FanView(QtWidgets.QFrame):
         for clip, _ in self._labels():
             label, color = clip.display_name, method_color(clip.method)
             check = QtWidgets.QCheckBox(label)
-            check.setChecked(True)
+            check.setChecked(label not in off)
+            if label in off:
+                self.canvas.set_visible(label, False)
             check.setStyleSheet(f"color: {color}")
             check.toggled.connect(lambda on, name=label: self.canvas.set_visible(name, on))
             self.methods_row.insertWidget(self.methods_row.count() - 1, check)

@@ -137,6 +137,29 @@ def test_an_edit_keeps_the_earlier_curves_faded_and_never_as_current(
     assert not model.edited and drawn(view.curves) > 0 and drawn(view.faded) == 0
 
 
+def test_faded_curves_made_after_an_edit_lie_beneath_and_keep_a_member_switched_off(
+    qtbot: QtBot, window: MainWindow
+) -> None:
+    # Faded curves are made when a fan first has earlier results (FanPlots._add_series); a
+    # member switched off stays off through the edit, its new curves and its faded ones.
+    view = trained(qtbot, window)
+    assert view.faded == {}
+    off, on = list(view.method_checks)[:2]
+    view.method_checks[off].setChecked(False)
+    model = view.model
+    window.commit_scenario(model, model.scenario.with_overrides({"train.lr": 0.2}))
+    view.refresh()
+    faded = {
+        label: [c for (name, _), c in view.faded.items() if name == label] for label in (off, on)
+    }
+    assert faded[off] and faded[on]
+    assert not any(c.isVisible() for c in faded[off]) and all(c.isVisible() for c in faded[on])
+    assert not view.method_checks[off].isChecked() and not view.curves[(off, "loss")].isVisible()
+    assert all(c.zValue() < view.curves[(on, "loss")].zValue() for c in faded[on])
+    view.method_checks[off].setChecked(True)
+    assert all(c.isVisible() for c in faded[off])
+
+
 def test_a_curve_is_set_again_for_other_results_with_as_many_rows(
     qtbot: QtBot, window: MainWindow
 ) -> None:
