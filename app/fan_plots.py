@@ -227,13 +227,16 @@ class FanPlots(pg.GraphicsLayoutWidget):  # type: ignore[misc]
         clips: Sequence[ClipConfig],
         factor: float,
         shown: Callable[[str], bool],
+        faded: bool = False,
     ) -> None:
         """The latest per-example norms of the first per-example member (else the first that
-        clips), clean and outliers apart, with each example-norm threshold where it was."""
+        clips), clean and outliers apart, with each example-norm threshold where it was; pale
+        when `faded`, for the results from before an edit."""
         clips = [c for c in clips if c.method != "none"]
         empty = stack is None or stack.example_norms is None or stack.outlier is None or not clips
         for item in (self.hist_clean, self.hist_outlier, *self.hist_lines.values()):
             item.setVisible(not empty)
+            item.setOpacity(FADED_ALPHA / 255 if faded else 1.0)
         if empty or stack is None or stack.example_norms is None or stack.outlier is None:
             return
         clip = next((c for c in clips if c.spec.compares == EXAMPLE_NORM), clips[0])

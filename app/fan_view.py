@@ -284,6 +284,7 @@ class FanView(QtWidgets.QFrame):
             [c for c, _ in self._labels()],
             self.factor,
             lambda label: self.method_checks[label].isChecked(),
+            faded=current is None,
         )
         self.fence.update()
         head = f"Batch size {self.batch_size}, thresholds × {self.factor:.3g}"

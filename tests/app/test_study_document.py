@@ -132,9 +132,11 @@ def test_an_edit_keeps_the_earlier_curves_faded_and_never_as_current(
     assert model.edited and view.state_label.text() == "edited since these results"
     assert drawn(view.curves) == 0  # nothing of the earlier scenario is drawn as current
     assert drawn(view.faded) > 0 and "before the edit" in view.readout.text()
+    assert view.hist_clean.opacity() < 0.5  # the histogram is of the earlier results too
     window.undo_stack.undo()  # back to the scenario the results belong to
     view.refresh()
     assert not model.edited and drawn(view.curves) > 0 and drawn(view.faded) == 0
+    assert view.hist_clean.opacity() == 1.0
 
 
 def test_faded_curves_made_after_an_edit_lie_beneath_and_keep_a_member_switched_off(
