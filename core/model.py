@@ -145,7 +145,8 @@ class Workspace:
         # Per width: the block, the dimension its width runs along, its per-row sums (K, 2n, B)
         # and the rows of those sums that hold activations (the first n).
         self._blocks: list[tuple[torch.Tensor, int, torch.Tensor, torch.Tensor]] = []
-        where: dict[int, tuple[torch.Tensor, torch.Tensor]] = {}
+        # width -> (block, its sums, whether the examples run innermost)
+        where: dict[int, tuple[torch.Tensor, torch.Tensor, bool]] = {}
         for width, n in count.items():
             across = width < batch
             block = torch.empty(
@@ -154,18 +155,18 @@ class Workspace:
             )
             sums = torch.empty(members, 2 * n, batch, dtype=dtype)
             self._blocks.append((block, 2 if across else 3, sums, sums[:, :n]))
-            where[width] = (block, sums)
+            where[width] = (block, sums, across)
         self.a: list[torch.Tensor | None] = [None] * arch.layers
         self.dz: list[torch.Tensor | None] = [None] * arch.layers
         self.factors: list[torch.Tensor | None] = [None] * arch.layers  # |a_l|^2 + 1
         self.squares_of_dz: list[torch.Tensor | None] = [None] * arch.layers  # |dz_l|^2
         taken = dict.fromkeys(count, 0)
         for layer, width in enumerate(hidden, start=1):
-            (block, sums), n, row = where[width], count[width], taken[width]
+            (block, sums, across), n, row = where[width], count[width], taken[width]
             taken[width] += 1
-            across = width < batch
-            self.a[layer] = block[:, row].transpose(1, 2) if across else block[:, row]
-            self.dz[layer - 1] = block[:, n + row].transpose(1, 2) if across else block[:, n + row]
+            a, d = block[:, row], block[:, n + row]
+            self.a[layer] = a.transpose(1, 2) if across else a
+            self.dz[layer - 1] = d.transpose(1, 2) if across else d
             self.factors[layer] = sums[:, row]
             self.squares_of_dz[layer - 1] = sums[:, n + row]
 
